@@ -1,0 +1,56 @@
+"""gapgauge: measure and bridge the gap between simulation and hardware when tuning balance controllers.
+
+The Python API mirrors the command line (see README.md). Heavy modules load on first use.
+"""
+
+from __future__ import annotations
+
+import importlib
+from typing import Any
+
+__version__ = "0.1.0"
+
+from .errors import GapgaugeError, LogError, ModelError, ScenarioError, StoreError
+from .scenario import Scenario, load_scenario
+from .trajectory import Trajectory
+
+# public name -> "module:attribute", imported on first access
+_LAZY = {
+    "Store": "gapgauge.store:Store",
+    "sweep": "gapgauge.sim.sweep:sweep",
+    "simulate": "gapgauge.sim.rollout:simulate",
+    "compute_features": "gapgauge.features:compute_features",
+    "read_log": "gapgauge.store.logs:read_log",
+    "ingest": "gapgauge.store.ingest:ingest",
+    "run_standin": "gapgauge.sim.standin:run_standin",
+    "assess_shift": "gapgauge.compare.shift:assess_shift",
+    "fit_prior": "gapgauge.compare.prior:fit_prior",
+    "propose": "gapgauge.compare.propose:propose",
+    "plan_budget": "gapgauge.compare.budget:plan_budget",
+    "calibrate": "gapgauge.compare.calibration:calibrate",
+    "write_report": "gapgauge.report.html:write_report",
+    "run_demo": "gapgauge.demo:run_demo",
+}
+
+__all__ = [
+    "__version__",
+    "GapgaugeError",
+    "LogError",
+    "ModelError",
+    "ScenarioError",
+    "StoreError",
+    "Scenario",
+    "Trajectory",
+    "load_scenario",
+    *_LAZY,
+]
+
+
+def __getattr__(name: str) -> Any:
+    target = _LAZY.get(name)
+    if target is None:
+        raise AttributeError(f"module 'gapgauge' has no attribute {name!r}")
+    module, attr = target.split(":")
+    value = getattr(importlib.import_module(module), attr)
+    globals()[name] = value
+    return value

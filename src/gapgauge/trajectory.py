@@ -1,0 +1,104 @@
+"""The one record type for simulated and hardware time series.
+
+A :class:`Trajectory` holds a batch of trials on one time base: ``t`` is ``(nstep,)`` seconds and
+each channel is an array ``(nbatch x nstep)`` in SI units. A hardware log is a batch of one. Channels
+a source does not have are simply absent; a feature that needs a missing channel raises
+:class:`MissingChannelError` (it never guesses).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+#: channel name -> (dimension, meaning). All values in SI: rad, rad/s, N m, N, m, m/s.
+CHANNELS: dict[str, tuple[str, str]] = {
+    "ankle_angle": ("angle", "ankle joint angle"),
+    "knee_angle": ("angle", "knee joint angle"),
+    "hip_angle": ("angle", "hip joint angle"),
+    "ankle_rate": ("angular_rate", "ankle joint rate"),
+    "knee_rate": ("angular_rate", "knee joint rate"),
+    "hip_rate": ("angular_rate", "hip joint rate"),
+    "ankle_torque": ("torque", "ankle joint torque"),
+    "knee_torque": ("torque", "knee joint torque"),
+    "hip_torque": ("torque", "hip joint torque"),
+    "heel_force": ("force", "vertical ground reaction force under the heel"),
+    "toe_force": ("force", "vertical ground reaction force under the toe"),
+    "heel_x": ("length", "horizontal position of the heel contact (rear edge of support)"),
+    "toe_x": ("length", "horizontal position of the toe contact (front edge of support)"),
+    "cop_x": ("length", "centre of pressure, horizontal"),
+    "com_x": ("length", "whole-body centre of mass, horizontal"),
+    "com_z": ("length", "whole-body centre of mass, height above the support surface"),
+    "com_vx": ("speed", "whole-body centre-of-mass velocity, horizontal"),
+    "com_vz": ("speed", "whole-body centre-of-mass velocity, vertical"),
+    "trunk_pitch": ("angle", "trunk pitch from vertical, positive forward"),
+    "body_contact": ("force", "contact force on any segment other than the foot (simulation only)"),
+    "platform_x": ("length", "support platform position"),
+}
+
+JOINTS: tuple[str, ...] = ("ankle", "knee", "hip")
+
+
+class MissingChannelError(KeyError):
+    """A feature needs a channel that this trajectory does not carry."""
+
+    def __init__(self, channel: str, feature: str = ""):
+        self.channel = channel
+        self.feature = feature
+        who = f"feature {feature!r} needs" if feature else "needs"
+        super().__init__(f"{who} channel {channel!r}, which this trajectory does not have")
+
+    def __str__(self) -> str:  # KeyError quotes its message; we want it plain
+        return self.args[0]
+
+
+@dataclass
+class Trajectory:
+    """A batch of time series on one time base.
+
+    Attributes:
+        t: time, ``(nstep,)`` s, strictly increasing.
+        channels: channel name -> ``(nbatch x nstep)`` array in SI units.
+        onset: time of the disturbance onset, s (features are measured from here).
+        meta: free-form provenance (source, robot id, synthetic flag, ...).
+    """
+
+    t: np.ndarray
+    channels: dict[str, np.ndarray]
+    onset: float = 0.0
+    meta: dict = field(default_factory=dict)
+
+    def __post_init__(self) -> None:
+        self.t = np.asarray(self.t, dtype=float)
+        for name, values in list(self.channels.items()):
+            arr = np.asarray(values, dtype=float)
+            if arr.ndim == 1:
+                arr = arr[None, :]
+            if arr.shape[-1] != self.t.shape[0]:
+                raise ValueError(f"channel {name!r} has {arr.shape[-1]} samples, time has {self.t.shape[0]}")
+            self.channels[name] = arr
+
+    @property
+    def nbatch(self) -> int:
+        return next(iter(self.channels.values())).shape[0] if self.channels else 0
+
+    @property
+    def dt(self) -> float:
+        """Mean sample interval, s."""
+        return float((self.t[-1] - self.t[0]) / max(len(self.t) - 1, 1))
+
+    def has(self, name: str) -> bool:
+        return name in self.channels
+
+    def get(self, name: str, feature: str = "") -> np.ndarray:
+        """Channel ``(nbatch x nstep)``; raises :class:`MissingChannelError` if absent."""
+        try:
+            return self.channels[name]
+        except KeyError:
+            raise MissingChannelError(name, feature) from None
+
+    def select(self, index) -> Trajectory:
+        """A sub-batch (index, slice or boolean mask over the batch)."""
+        sel = [index] if isinstance(index, (int, np.integer)) else index
+        return Trajectory(self.t, {k: v[sel] for k, v in self.channels.items()}, self.onset, dict(self.meta))
