@@ -1,0 +1,164 @@
+"""Scenario loading: the bundled files load, and bad files are refused with the key path and a fix."""
+
+from __future__ import annotations
+
+import math
+import re
+import shutil
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from gapgauge import ScenarioError, load_scenario
+
+ROOT = Path(__file__).resolve().parents[1]
+PUSH = ROOT / "scenarios" / "push_recovery.toml"
+
+
+@pytest.fixture()
+def project(tmp_path: Path) -> Path:
+    """A scratch project folder laid out like the repository: models/ and scenarios/."""
+    (tmp_path / "models").mkdir()
+    (tmp_path / "scenarios").mkdir()
+    shutil.copy(ROOT / "models" / "planar_body.xml", tmp_path / "models")
+    shutil.copy(PUSH, tmp_path / "scenarios" / "push_recovery.toml")
+    return tmp_path
+
+
+def _variant(project: Path, old: str, new: str, name: str = "variant.toml") -> Path:
+    text = (project / "scenarios" / "push_recovery.toml").read_text()
+    assert old in text, f"test set-up: {old!r} not in the scenario"
+    path = project / "scenarios" / name
+    path.write_text(text.replace(old, new, 1))
+    return path
+
+
+@pytest.mark.parametrize("name", ["push_recovery.toml", "platform_shift.toml"])
+def test_bundled_scenarios_load_with_10_to_14_parameters(name: str) -> None:
+    scenario = load_scenario(ROOT / "scenarios" / name)
+    assert 10 <= scenario.dim <= 14
+    for p in scenario.parameters:
+        assert p.low <= p.safe_low < p.safe_high <= p.high
+        assert p.unit
+
+
+def test_api_parameters_carry_name_unit_bounds_and_safe_bounds() -> None:
+    first = load_scenario(PUSH).parameters[0]
+    for attr in ("name", "unit", "low", "high", "safe_low", "safe_high"):
+        assert hasattr(first, attr)
+
+
+def test_unit_cube_map_round_trips_and_uses_log_axes() -> None:
+    scenario = load_scenario(PUSH)
+    rng = np.random.default_rng(0)
+    u = rng.random((50, scenario.dim))
+    assert np.allclose(scenario.to_unit(scenario.from_unit(u)), u, atol=1e-12)
+    # a log axis maps its geometric midpoint to 0.5 (definition of a log scale)
+    i = next(i for i, p in enumerate(scenario.parameters) if p.log)
+    p = scenario.parameters[i]
+    mid = np.full(scenario.dim, 0.5)
+    assert scenario.from_unit(mid)[0, i] == pytest.approx(math.sqrt(p.low * p.high))
+
+
+def test_content_hash_changes_with_content(project: Path) -> None:
+    base = load_scenario(project / "scenarios" / "push_recovery.toml")
+    other = load_scenario(_variant(project, "magnitude = 110.0", "magnitude = 100.0"))
+    assert base.content_hash != other.content_hash
+
+
+@pytest.mark.parametrize(
+    ("old", "new", "key"),
+    [
+        ('name = "push_recovery"', 'name = "push_recovery"\ncolour = "red"', "colour"),
+        ("low = 80.0\nhigh = 1500.0", "low = 1500.0\nhigh = 80.0", "parameters[0].high"),
+        ("safe_low = 300.0", "safe_low = 50.0", "parameters[0].safe_low"),
+        ('kind = "push"', 'kind = "kick"', "task.kind"),
+        ("horizon = 3.0", 'horizon = "long"', "task.horizon"),
+        ('role = "stiffness"', 'role = "stiffness"\njoint_typo = 1', "parameters[0].joint_typo"),
+        ("[physics.friction]\nunit = \"1\"\nlow = 0.5", "[physics.friction]\nunit = \"1\"\nlow = -0.5", "physics.friction.low"),
+        ('ankle_angle = { column = "ankle_pos_deg", unit = "deg" }',
+         'ankle_angle = { column = "ankle_pos_deg", unit = "mm" }', "hardware.columns.ankle_angle.unit"),
+        ("peak_com_excursion = 10.0", "peak_com_excursiom = 10.0", "objective.weights.peak_com_excursiom"),
+    ],
+)
+def test_bad_scenario_is_refused_with_its_key_path(project: Path, old: str, new: str, key: str) -> None:
+    path = _variant(project, old, new)
+    with pytest.raises(ScenarioError) as info:
+        load_scenario(path)
+    message = str(info.value)
+    assert str(path) in message
+    assert f"'{key}'" in message
+    assert "\n" not in message
+    assert ";" in message  # the fix follows the problem
+
+
+def test_missing_model_file_is_refused(project: Path) -> None:
+    path = _variant(project, "../models/planar_body.xml", "../models/nowhere.xml")
+    with pytest.raises(ScenarioError, match=r"key 'model'.*not found"):
+        load_scenario(path)
+
+
+def test_model_path_leaving_the_project_is_refused(project: Path) -> None:
+    path = _variant(project, "../models/planar_body.xml", "../../../../etc/hosts.xml")
+    with pytest.raises(ScenarioError, match=r"leaves the scenario's project folder"):
+        load_scenario(path)
+
+
+def test_absolute_model_path_is_refused(project: Path) -> None:
+    path = _variant(project, "../models/planar_body.xml", str(project / "models" / "planar_body.xml"))
+    with pytest.raises(ScenarioError, match=r"absolute path"):
+        load_scenario(path)
+
+
+def test_model_that_is_not_mjcf_is_refused(project: Path) -> None:
+    (project / "models" / "junk.xml").write_text("<html><body>not a model</body></html>")
+    path = _variant(project, "../models/planar_body.xml", "../models/junk.xml")
+    with pytest.raises(ScenarioError, match=r"no <mujoco> element"):
+        load_scenario(path)
+
+
+def test_invalid_toml_names_the_file(project: Path) -> None:
+    path = project / "scenarios" / "broken.toml"
+    path.write_text("name = \n")
+    with pytest.raises(ScenarioError, match=re.escape(str(path)) + r": not valid TOML"):
+        load_scenario(path)
+
+
+def test_huge_scenario_file_is_refused_before_parsing(project: Path) -> None:
+    path = project / "scenarios" / "huge.toml"
+    path.write_text("x = [" + "1," * 600_000 + "1]\n")
+    with pytest.raises(ScenarioError, match=r"more than a scenario can be"):
+        load_scenario(path)
+
+
+def test_overlay_extends_base_and_overrides_physics(project: Path) -> None:
+    overlay = project / "scenarios" / "push_recovery.calibrated.toml"
+    overlay.write_text('extends = "push_recovery.toml"\n\n[physics.friction]\nlow = 0.55\nhigh = 0.65\nnominal = 0.6\n')
+    scenario = load_scenario(overlay)
+    assert scenario.physics_range("friction").nominal == 0.6
+    assert scenario.name == "push_recovery"
+    assert scenario.model_path == (project / "models" / "planar_body.xml").resolve()
+
+
+def test_overlay_extending_outside_the_project_is_refused(project: Path, tmp_path_factory) -> None:
+    elsewhere = tmp_path_factory.mktemp("elsewhere") / "base.toml"
+    shutil.copy(PUSH, elsewhere)
+    overlay = project / "scenarios" / "bad_overlay.toml"
+    overlay.write_text(f'extends = "{Path("..") / ".." / ".." / elsewhere.relative_to(elsewhere.anchor)}"\n')
+    with pytest.raises(ScenarioError, match=r"key 'extends'"):
+        load_scenario(overlay)
+
+
+def test_params_from_mapping_refuses_out_of_bounds_and_unknown_names() -> None:
+    scenario = load_scenario(PUSH)
+    values = {p.name: p.nominal for p in scenario.parameters}
+    assert np.allclose(scenario.params_from_mapping(values), scenario.nominal_parameters())
+    with pytest.raises(ScenarioError, match="outside its bounds"):
+        scenario.params_from_mapping({**values, "ankle_kp": 1e6})
+    with pytest.raises(ScenarioError, match="unknown parameter"):
+        scenario.params_from_mapping({**values, "elbow_kp": 1.0})
+    missing = dict(values)
+    missing.pop("hip_kd")
+    with pytest.raises(ScenarioError, match="missing parameter"):
+        scenario.params_from_mapping(missing)
