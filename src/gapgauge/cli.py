@@ -56,7 +56,167 @@ def main() -> None:
 # ---- ingest and standin (store/logs, sim/standin) ------------------------------------------
 
 
+@main.command("ingest")
+@click.argument("scenario", type=click.Path(dir_okay=False))
+@click.argument("logs", nargs=-1, required=True, type=click.Path())
+@store_option
+@click.option("--matches", default=32, show_default=True, type=click.IntRange(1, 4096),
+              help="Matched simulations per trial: nominal physics plus K-1 randomised draws.")
+@click.option("--seed", default=0, show_default=True, type=click.IntRange(0),
+              help="Seed of the physics draws.")
+def ingest_command(scenario: str, logs: tuple[str, ...], store_path: str, matches: int, seed: int) -> None:
+    """Validate hardware LOGs (CSV + sidecar JSON, or ROS 2 bags), store them and match simulations."""
+    from rich.markup import escape
+    from rich.table import Table
+
+    from .scenario import load_scenario
+    from .store import Store
+    from .store.ingest import ingest
+
+    sc = load_scenario(scenario)
+    store = Store(store_path)
+    try:
+        summary = ingest(sc, list(logs), store=store, matches=matches, seed=seed, progress=True)
+    finally:
+        getattr(store, "close", lambda: None)()
+    table = Table(title=f"ingest into {escape(store_path)}", title_justify="left")
+    for column in ("log", "result", "trial", "notes"):
+        table.add_column(column, overflow="fold")
+    groups = (("[green]stored[/]", summary.stored), ("already stored", summary.skipped_duplicates))
+    for label, items in groups:
+        for item in items:
+            notes = []
+            if item.synthetic:
+                notes.append("synthetic")
+            if item.ignored_columns:
+                notes.append("ignored columns: " + ", ".join(item.ignored_columns))
+            notes.extend(item.warnings)
+            table.add_row(escape(item.path), label, str(item.trial_id), escape("; ".join(notes)))
+    for path, reason in summary.failed:
+        table.add_row(escape(path), "[red]failed[/]", "", escape(reason))
+    console.print(table)
+    console.print(
+        f"{len(summary.stored)} stored, {len(summary.skipped_duplicates)} already stored, "
+        f"{len(summary.failed)} failed; {len(summary.matched)} trial(s) with {summary.matches} matched "
+        f"simulations each (seed {summary.seed}; {summary.simulated} simulated now)"
+    )
+    if summary.failed:
+        sys.exit(2)
+
+
+@main.command("standin")
+@click.argument("scenario", type=click.Path(dir_okay=False))
+@click.option("--profile", "profile_path", required=True, type=click.Path(dir_okay=False),
+              help="Perturbation profile (TOML), e.g. scenarios/standin/close.toml.")
+@click.option("--params", "params_path", default=None, type=click.Path(dir_okay=False),
+              help="Parameter sets: the propose output or a JSON list of {name: value}.")
+@click.option("--design", default=None, type=click.IntRange(1, 10000),
+              help="Instead of --params: this many Sobol sets inside the safe bounds.")
+@click.option("--out", "out_dir", required=True, type=click.Path(file_okay=False),
+              help="Folder for the logs.")
+@click.option("--seed", default=0, show_default=True, type=click.IntRange(0),
+              help="Seed of the design and the noise.")
+def standin_command(scenario: str, profile_path: str, params_path: str | None, design: int | None,
+                    out_dir: str, seed: int) -> None:
+    """Run parameter sets on the stand-in robot and write SYNTHETIC logs in the hardware contract."""
+    from rich.markup import escape
+
+    from .errors import GapgaugeError
+    from .scenario import load_scenario
+    from .sim.standin import load_params_file, run_standin
+
+    if (params_path is None) == (design is None):
+        raise GapgaugeError("standin: give exactly one of --params FILE.json or --design N")
+    sc = load_scenario(scenario)
+    params = load_params_file(params_path) if params_path is not None else None
+    paths = run_standin(sc, profile_path, params_list=params_path, design=design, out_dir=out_dir, seed=seed)
+    wanted = design if design is not None else len(params or [])
+    console.print(f"[bold]SYNTHETIC[/] logs from the stand-in robot ({escape(profile_path)}, seed {seed}), "
+                  "not hardware trials:")
+    for path in paths:
+        console.print(f"  {escape(str(path))}  (+ {escape(path.with_suffix('.json').name)})")
+    if len(paths) < wanted:
+        console.print(f"{wanted - len(paths)} parameter set(s) diverged in simulation; no log for them")
+
+
 # ---- shift (compare/shift) -----------------------------------------------------------------
+
+
+@main.command("shift")
+@click.argument("scenario", type=click.Path(dir_okay=False))
+@store_option
+@json_option
+@click.option("--plots", "plots_dir", default=None, type=click.Path(file_okay=False),
+              help="Save a PNG per feature (simulated spread with the hardware values; residuals) here.")
+@click.option("--seed", default=0, show_default=True, type=click.IntRange(0),
+              help="Seed of the bootstraps and permutations.")
+@click.option("--level", default=None, type=click.FloatRange(0.0, 0.5, min_open=True, max_open=True),
+              help="Significance level; overrides the scenario's [shift] level.")
+def shift_command(scenario: str, store_path: str, json_path: str | None, plots_dir: str | None, seed: int,
+                  level: float | None) -> None:
+    """Does simulation carry over? Per-feature verdicts and joint tests on the matched hardware trials."""
+    import math
+
+    from rich.markup import escape
+    from rich.table import Table
+
+    from .compare.shift import assess_shift
+    from .scenario import load_scenario
+
+    sc = load_scenario(scenario)
+    report = assess_shift(sc, store_path, seed=seed, level=level, json_path=json_path, plots_dir=plots_dir)
+    s = report.settings
+
+    def num(value: float | None, fmt: str = ".3g") -> str:
+        return format(value, fmt) if value is not None and math.isfinite(value) else "-"
+
+    def pair(values: tuple[float, float]) -> str:
+        return f"[{num(values[0])}, {num(values[1])}]"
+
+    colours = {"carries_over": "green", "offset_order_kept": "yellow", "does_not_carry_over": "red",
+               "undecided": "white"}
+    title = f"shift: {escape(sc.name)}, {len(report.trial_ids)} trial(s)"
+    table = Table(title=title, title_justify="left")
+    for column in ("feature", "verdict", "n", "bias (sd)", f"{1 - s['level']:.0%} bias interval",
+                   "max |resid|", "Wasserstein (sd)", "KS", "Kendall tau"):
+        table.add_column(column, overflow="fold")
+    for f in report.features:
+        tau = f.rank.kendall if f.rank is not None else None
+        table.add_row(
+            escape(f.name), f"[{colours[f.verdict]}]{f.verdict}[/]", str(f.n_trials),
+            num(f.bias_sd_units, "+.2f"),
+            pair(f.bias_test_interval), num(f.max_abs_residual, ".2f"), num(f.wasserstein_sd_units, ".2f"),
+            num(f.ks_statistic, ".2f"), num(tau, ".2f"),
+        )
+    console.print(table)
+    for f in report.features:
+        console.print(f"[{colours[f.verdict]}]{escape(f.name)}[/]: {escape(f.reason)}")
+    j = report.joint
+    console.print(
+        f"joint ({len(j['features'])} features): MMD^2 {num(j['mmd2'])} (p = {num(j['mmd_p_value'], '.3f')}, "
+        f"{j['mmd_permutations']} permutations); classifier AUC {num(j['classifier_auc'], '.2f')} "
+        f"{pair(j['classifier_auc_interval'])} (p = {num(j['classifier_p_value'], '.3f')})"
+    )
+    if report.objective is not None:
+        o = report.objective
+        console.print(
+            f"objective: Kendall tau {num(o.rank.kendall, '.2f')} "
+            f"(p = {num(o.rank.kendall_p_value, '.3f')}); "
+            f"hardware = {num(o.link.intercept)} {pair(o.link.intercept_interval)} + "
+            f"{num(o.link.slope)} {pair(o.link.slope_interval)} x simulation"
+        )
+    console.print(
+        f"level {s['level']:g}; carries over: {1 - 2 * s['level']:.0%} bias interval inside "
+        f"+-{s['offset_limit']:g} sd and residuals beyond {s['residual_limit']:g} "
+        "no more often than in simulation; "
+        f"order kept: Kendall tau >= {s['rank_threshold']:g} with p < level; seed {report.seed}"
+    )
+    for note in report.notes:
+        console.print(f"note: {escape(note)}")
+    if json_path:
+        console.print(f"JSON: {escape(json_path)}")
+    for path in report.plots:
+        console.print(f"plot: {escape(path)}")
 
 
 # ---- prior and propose (compare/prior, compare/propose) ------------------------------------
@@ -66,6 +226,58 @@ def main() -> None:
 
 
 # ---- report and demo (report/, demo) -------------------------------------------------------
+
+
+@main.command("report")
+@click.argument("scenario", type=click.Path(dir_okay=False))
+@store_option
+@click.option("--out", "out_path", default="report.html", show_default=True, type=click.Path(dir_okay=False),
+              help="HTML file to write; the JSON summary goes beside it (same name, .json).")
+@click.option("--plots", "plots_dir", default=None, type=click.Path(file_okay=False),
+              help="Also save every figure as a PNG here.")
+def report_command(scenario: str, store_path: str, out_path: str, plots_dir: str | None) -> None:
+    """Write the self-contained HTML transfer report and its JSON summary."""
+    from pathlib import Path
+
+    from rich.markup import escape
+
+    from .errors import StoreError
+    from .report.html import write_report
+    from .scenario import load_scenario
+    from .store import Store
+
+    sc = load_scenario(scenario)
+    if not Path(store_path).is_file():
+        raise StoreError(f"{store_path}: store not found; "
+                         f"run gapgauge sweep {scenario} --store {store_path} first")
+    store = Store(store_path)
+    try:
+        result = write_report(sc, store, out_path, plots_dir=plots_dir)
+    finally:
+        getattr(store, "close", lambda: None)()
+    console.print(f"[bold]verdict:[/] {escape(result.decision.verdict)}")
+    console.print(f"[bold]next step:[/] {escape(result.decision.next_step)}")
+    if result.decision.command:
+        console.print(f"  {escape(result.decision.command)}")
+    for section in result.sections:
+        if not section.filled:
+            command = escape(section.fill_command or "")
+            console.print(f"section '{escape(section.title)}' is empty: run {command}")
+    console.print(f"report: {escape(str(result.path))}\nJSON: {escape(str(result.json_path))}")
+    console.print(CAUTION)
+
+
+@main.command("demo")
+@click.option("--out", "out_dir", default="gapgauge-demo", show_default=True,
+              type=click.Path(file_okay=False),
+              help="Folder for the scenario copy, the store, the stand-in logs and the report.")
+@click.option("--quick", is_flag=True, help="A smaller sweep and cheaper fits: about a minute in all.")
+@click.option("--seed", default=0, show_default=True, type=click.IntRange(0), help="Seed of every step.")
+def demo_command(out_dir: str, quick: bool, seed: int) -> None:
+    """The whole path on the bundled push-recovery scenario with the stand-in robot (no robot needed)."""
+    from .demo import run_demo
+
+    run_demo(out_dir, quick=quick, seed=seed, progress=True)
 
 
 # ---- store maintenance ---------------------------------------------------------------------

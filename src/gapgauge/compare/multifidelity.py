@@ -1,0 +1,283 @@
+"""The multi-fidelity prior: simulation (low fidelity) corrected by hardware (high fidelity).
+
+``MultiFidelityGP`` is the autoregressive model of Kennedy and O'Hagan (2000),
+
+    high(x) = rho * low(x) + delta(x),
+
+fitted recursively as in Le Gratiet and Garnier (2014): first the simulation level ``low`` alone
+(a :class:`~gapgauge.compare.sparse.SparseGP` for many rollouts, an
+:class:`~gapgauge.compare.gp.ExactGP` for few), then the hardware level given the simulation
+level's posterior mean at the trial parameters. As in Le Gratiet and Garnier, rho and a constant
+offset are regression coefficients of the discrepancy GP, with a Gaussian prior; their posterior
+given the discrepancy's hyperparameters is Gaussian and exact (Rasmussen and Williams 2006, section
+2.7, eq. 2.42): the basis functions are ``[low mean(x), 1]``.
+
+What it adds, because hardware trials are few (2 to 10):
+
+- weak priors: rho ~ N(1, 0.5^2) (simulation right up to a factor); offset ~ N(0, 1) in
+  simulation-sd units; log-normal priors on the discrepancy's scale (median 0.5 simulation sd),
+  length-scales (median :func:`~gapgauge.compare.kernels.default_length_scale`) and the hardware
+  noise (median the simulation's own noise: physics randomisation is the best guess of trial-to-trial
+  spread); the discrepancy's hyperparameters are the maximum a posteriori;
+- the simulation level's own uncertainty at the trial parameters enters the hardware level as
+  extra per-trial variance ``E[rho^2] var_low(x_i)`` (at rho's prior second moment, which keeps rho a
+  linear coefficient);
+- with no hardware trials the model is the simulation level plus the discrepancy prior: rho at its
+  prior mean, the discrepancy at its prior scale.
+
+The predictive mean is ``E[rho] mu_low(x) + mu_delta(x)`` and the variance
+``E[rho^2] var_low(x) + var_delta(x)`` (the latter including the coefficients' uncertainty).
+Outputs are standardised with the simulation level's mean and sd; inputs are in the unit cube.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+from scipy.stats import norm
+
+from ..errors import ModelError
+from .gp import ExactGP
+from .kernels import Matern52, default_length_scale
+from .sparse import SparseGP
+
+# above this many simulation points the simulation level is the sparse GP (exact GP cost grows as n^3)
+SPARSE_THRESHOLD = 2000
+RHO_PRIOR = (1.0, 0.5)  # mean, sd
+OFFSET_PRIOR_SD = 1.0  # simulation-sd units
+TREND_PRIOR_SD = 1.0  # simulation-sd units over the whole unit cube, shared among the dimensions
+DISCREPANCY_SD_PRIOR = (0.5, 1.0)  # median (simulation-sd units), sd of its log
+LENGTH_SCALE_LOG_SD = 1.0
+NOISE_LOG_SD = 1.5  # sd of the log of the hardware noise sd
+NOISE_FLOOR = 1e-4  # standardised variance: the least noise median a noise-free simulation implies
+
+
+class MultiFidelityGP:
+    """Kennedy-O'Hagan autoregressive co-kriging, fitted recursively (Le Gratiet and Garnier 2014).
+
+    Parameters:
+        rho_prior: (mean, sd) of the normal prior of rho.
+        offset_prior_sd: sd of the normal prior of the constant offset (simulation-sd units).
+        discrepancy_sd_prior: (median, log-sd) of the log-normal prior of the discrepancy sd.
+        max_inducing: inducing points of the sparse simulation level.
+        sparse_threshold: use the sparse GP above this many simulation points.
+        n_restarts: extra seeded optimiser starts for the discrepancy's hyperparameters.
+        random_state: seed or Generator (sparse subsample, k-means++, restarts).
+    """
+
+    def __init__(
+        self,
+        *,
+        rho_prior: tuple[float, float] = RHO_PRIOR,
+        offset_prior_sd: float = OFFSET_PRIOR_SD,
+        discrepancy_sd_prior: tuple[float, float] = DISCREPANCY_SD_PRIOR,
+        max_inducing: int = 300,
+        sparse_threshold: int = SPARSE_THRESHOLD,
+        n_restarts: int = 2,
+        trend_prior_sd: float | None = TREND_PRIOR_SD,
+        random_state: int | np.random.Generator | None = 0,
+    ):
+        self.trend_prior_sd = trend_prior_sd
+        self.rho_prior = rho_prior
+        self.offset_prior_sd = offset_prior_sd
+        self.discrepancy_sd_prior = discrepancy_sd_prior
+        self.max_inducing = max_inducing
+        self.sparse_threshold = sparse_threshold
+        self.n_restarts = n_restarts
+        self.random_state = random_state
+
+    # ---- fit ------------------------------------------------------------------------------
+    def fit(self, X_low: np.ndarray, y_low: np.ndarray, X_high: np.ndarray, y_high: np.ndarray) -> MultiFidelityGP:
+        """Fit both levels: simulation ``X_low (n x dim), y_low (n,)``; hardware ``X_high (k x dim), y_high (k,)``.
+
+        Inputs in the unit cube; targets in the same (objective) units at both levels.
+        """
+        X_low = np.atleast_2d(np.asarray(X_low, dtype=float))
+        y_low = np.asarray(y_low, dtype=float).ravel()
+        if y_low.size == 0:
+            raise ModelError("the multi-fidelity prior needs simulated points at the low level")
+        rng = np.random.default_rng(self.random_state)
+        self._seed_high = int(rng.integers(2**31))
+        if y_low.size > self.sparse_threshold:
+            low: SparseGP | ExactGP = SparseGP(n_inducing=self.max_inducing, normalize_y=True, random_state=rng)
+        else:
+            low = ExactGP(noise=0.1, normalize_y=True, n_restarts=1, random_state=rng)
+        self.low_ = low.fit(X_low, y_low)
+        self.y_mean_ = float(y_low.mean())
+        sd = float(y_low.std())
+        self.y_std_ = sd if sd > 0 else 1.0
+        self.dim_ = X_low.shape[1]
+        return self.fit_high(X_high, y_high)
+
+    def _low_standardised(self, X: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        mu, sd = self.low_.predict(X, return_std=True)
+        return (mu - self.y_mean_) / self.y_std_, sd / self.y_std_
+
+    def low_noise_variance(self) -> float:
+        """The simulation level's noise variance in simulation-sd units squared."""
+        return float(self.low_.noise_ * (self.low_._y_std / self.y_std_) ** 2)
+
+    def _hyperprior(self) -> np.ndarray:
+        dim = self.dim_
+        median_sd, log_sd = self.discrepancy_sd_prior
+        noise_median = max(self.low_noise_variance(), NOISE_FLOOR)
+        rows = [[2.0 * np.log(median_sd), 2.0 * log_sd]]
+        rows += [[np.log(default_length_scale(dim)), LENGTH_SCALE_LOG_SD]] * dim
+        rows += [[np.log(noise_median), 2.0 * NOISE_LOG_SD]]
+        return np.array(rows)
+
+    def _basis(self, X: np.ndarray, mu_low: np.ndarray) -> np.ndarray:
+        columns = [mu_low, np.ones_like(mu_low)]
+        if self.trend_prior_sd is not None:
+            columns += list((X - 0.5).T)
+        return np.column_stack(columns)
+
+    def _basis_prior(self) -> tuple[np.ndarray, np.ndarray]:
+        rho_mean, rho_sd = self.rho_prior
+        mean = [rho_mean, 0.0]
+        var = [rho_sd**2, self.offset_prior_sd**2]
+        if self.trend_prior_sd is not None:
+            mean += [0.0] * self.dim_
+            # a slope of s per unit-cube side changes the output by s across it; shared so that
+            # the whole trend's prior variance does not grow with the number of parameters
+            var += [self.trend_prior_sd**2 / self.dim_] * self.dim_
+        return np.array(mean), np.diag(var)
+
+    def fit_high(self, X_high: np.ndarray, y_high: np.ndarray, optimize: bool = True) -> MultiFidelityGP:
+        """(Re)fit the hardware level only, keeping the simulation level.
+
+        ``X_high (k x dim)`` unit cube, ``y_high (k,)`` objective units; ``k`` may be 0. With
+        ``optimize`` false the discrepancy's hyperparameters stay as fitted before (kriging believer).
+        """
+        X_high = np.asarray(X_high, dtype=float).reshape(-1, self.dim_)
+        y_high = np.asarray(y_high, dtype=float).ravel()
+        mu, sd = self._low_standardised(X_high)
+        rho_mean, rho_sd = self.rho_prior
+        second_moment = rho_mean**2 + rho_sd**2
+        hyperprior = self._hyperprior()
+        if optimize or not hasattr(self, "delta_"):
+            kernel = Matern52(np.exp(hyperprior[0, 0]), np.exp(hyperprior[1:-1, 0]))
+            noise = float(np.exp(hyperprior[-1, 0]))
+        else:
+            kernel, noise = self.delta_.kernel_, self.delta_.noise_
+        delta = ExactGP(
+            kernel, noise,
+            alpha=second_moment * sd**2,
+            normalize_y=False,
+            optimize=optimize and y_high.size > 0,
+            n_restarts=self.n_restarts,
+            hyperprior=hyperprior,
+            basis_prior=self._basis_prior(),
+            random_state=self._seed_high,
+        )
+        basis = self._basis(X_high, mu)
+        self.delta_ = delta.fit(X_high, (y_high - self.y_mean_) / self.y_std_, basis=basis)
+        self.X_high_, self.y_high_ = X_high, y_high
+        return self
+
+    # ---- fitted quantities ----------------------------------------------------------------
+    @property
+    def rho_(self) -> float:
+        """Posterior mean of rho (given the discrepancy's hyperparameters)."""
+        return float(self.delta_.coef_[0])
+
+    @property
+    def rho_sd_(self) -> float:
+        return float(np.sqrt(self.delta_.coef_cov_[0, 0]))
+
+    def rho_interval(self, level: float = 0.95) -> tuple[float, float]:
+        """Central interval of rho's Gaussian posterior (R&W eq. 2.42, hyperparameters at the MAP)."""
+        half = norm.ppf(0.5 + level / 2) * self.rho_sd_
+        return self.rho_ - half, self.rho_ + half
+
+    @property
+    def discrepancy_scale_(self) -> float:
+        """Prior sd of the discrepancy delta(x), in objective units (fitted, or the prior median)."""
+        return float(np.sqrt(self.delta_.kernel_.variance) * self.y_std_)
+
+    @property
+    def offset_(self) -> float:
+        """Posterior mean of the constant offset, objective units (relative to the simulation mean)."""
+        return float(self.delta_.coef_[1] * self.y_std_)
+
+    @property
+    def hardware_noise_sd_(self) -> float:
+        return float(np.sqrt(self.delta_.noise_) * self.y_std_)
+
+    # ---- marginal likelihood and prediction ------------------------------------------------
+    def log_marginal_likelihood(
+        self, theta: np.ndarray | None = None, eval_gradient: bool = False
+    ) -> float | tuple[float, np.ndarray]:
+        """Log marginal likelihood of the hardware level (rho and the offset integrated out),
+        in standardised units; ``theta`` as :attr:`ExactGP.theta` of the discrepancy."""
+        return self.delta_.log_marginal_likelihood(theta, eval_gradient)
+
+    def predict(self, X: np.ndarray, return_std: bool = False,
+                observation: bool = False) -> np.ndarray | tuple[np.ndarray, np.ndarray]:
+        """Hardware-level mean (and sd) at ``X (n x dim)`` (unit cube), in objective units.
+
+        The sd is of the latent hardware function; with ``observation`` the hardware noise is added.
+        """
+        X = np.atleast_2d(np.asarray(X, dtype=float))
+        mu, sd = self._low_standardised(X)
+        basis = self._basis(X, mu)
+        if not return_std:
+            return self.delta_.predict(X, basis=basis) * self.y_std_ + self.y_mean_
+        mean, delta_sd = self.delta_.predict(X, return_std=True, basis=basis, observation=observation)
+        rho_second_moment = self.rho_**2 + self.rho_sd_**2
+        var = delta_sd**2 + rho_second_moment * sd**2
+        return mean * self.y_std_ + self.y_mean_, np.sqrt(var) * self.y_std_
+
+    def predict_low(self, X: np.ndarray, return_std: bool = False,
+                    observation: bool = False) -> np.ndarray | tuple[np.ndarray, np.ndarray]:
+        """The simulation level alone at ``X (n x dim)`` (unit cube), objective units."""
+        return self.low_.predict(X, return_std=return_std, observation=observation)
+
+    def copy_with_high(self, X_high: np.ndarray, y_high: np.ndarray, optimize: bool) -> MultiFidelityGP:
+        """A new model sharing the (fitted) simulation level, with other hardware data."""
+        other = MultiFidelityGP.__new__(MultiFidelityGP)
+        other.__dict__.update(self.__dict__)
+        return other.fit_high(X_high, y_high, optimize=optimize)
+
+    # ---- storage --------------------------------------------------------------------------
+    def to_state(self) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
+        low_params, low_arrays = self.low_.to_state()
+        delta_params, delta_arrays = self.delta_.to_state()
+        params = {
+            "model": "MultiFidelityGP",
+            "rho_prior": list(self.rho_prior),
+            "offset_prior_sd": self.offset_prior_sd,
+            "discrepancy_sd_prior": list(self.discrepancy_sd_prior),
+            "max_inducing": self.max_inducing,
+            "sparse_threshold": self.sparse_threshold,
+            "n_restarts": self.n_restarts,
+            "seed_high": self._seed_high,
+            "y_mean": self.y_mean_,
+            "y_std": self.y_std_,
+            "dim": self.dim_,
+            "low": low_params,
+            "delta": delta_params,
+        }
+        arrays = {f"low.{k}": v for k, v in low_arrays.items()}
+        arrays.update({f"delta.{k}": v for k, v in delta_arrays.items()})
+        arrays.update(X_high=self.X_high_, y_high=self.y_high_)
+        return params, arrays
+
+    @classmethod
+    def from_state(cls, params: dict[str, Any], arrays: dict[str, np.ndarray]) -> MultiFidelityGP:
+        model = cls(rho_prior=tuple(params["rho_prior"]), offset_prior_sd=params["offset_prior_sd"],
+                    discrepancy_sd_prior=tuple(params["discrepancy_sd_prior"]),
+                    max_inducing=params["max_inducing"], sparse_threshold=params["sparse_threshold"],
+                    n_restarts=params["n_restarts"])
+        low_arrays = {k[4:]: v for k, v in arrays.items() if k.startswith("low.")}
+        delta_arrays = {k[6:]: v for k, v in arrays.items() if k.startswith("delta.")}
+        low_cls = SparseGP if params["low"]["model"] == "SparseGP" else ExactGP
+        model.low_ = low_cls.from_state(params["low"], low_arrays)
+        model.delta_ = ExactGP.from_state(params["delta"], delta_arrays)
+        model._seed_high = int(params["seed_high"])
+        model.y_mean_, model.y_std_ = float(params["y_mean"]), float(params["y_std"])
+        model.dim_ = int(params["dim"])
+        model.X_high_ = np.asarray(arrays["X_high"]).reshape(-1, model.dim_)
+        model.y_high_ = np.asarray(arrays["y_high"])
+        return model

@@ -1,0 +1,154 @@
+"""Plots of the shift assessment: per feature, the simulated distribution at each trial's parameters
+with the hardware value on it, and the standardised residuals against the residual limit.
+
+Two entry points: :func:`plot_shift` writes PNGs from a :class:`~gapgauge.compare.shift.ShiftReport`;
+:func:`shift_figures` returns PNG bytes from the stored JSON form (what the HTML report reads).
+Matplotlib runs on the Agg backend (no display needed).
+"""
+
+from __future__ import annotations
+
+import io
+import math
+import re
+from pathlib import Path
+from typing import Any
+
+import matplotlib
+
+matplotlib.use("Agg")
+import matplotlib.pyplot as plt  # noqa: E402  (after choosing the backend)
+import numpy as np  # noqa: E402
+
+VERDICT_COLOURS = {
+    "carries_over": "#1b7837",
+    "offset_order_kept": "#b8860b",
+    "does_not_carry_over": "#b2182b",
+    "undecided": "#555555",
+}
+
+
+def feature_png(
+    name: str,
+    hardware: np.ndarray,
+    simulated: np.ndarray | None,
+    residuals: np.ndarray,
+    residual_limit: float,
+    verdict: str = "",
+    simulated_mean: np.ndarray | None = None,
+    simulated_sd: np.ndarray | None = None,
+    trial_labels: list[str] | None = None,
+) -> bytes:
+    """One feature's figure as PNG bytes.
+
+    Args:
+        name: feature name (title).
+        hardware: ``(n,)`` hardware values, feature units.
+        simulated: ``(n x K)`` matched simulations, feature units (NaN ignored), or None to draw
+            ``simulated_mean`` +- ``simulated_sd`` instead.
+        residuals: ``(n,)`` standardised residuals, dimensionless (non-finite are drawn at the edge).
+        residual_limit: the band drawn on the residual panel.
+        verdict: printed in the title and sets its colour.
+        simulated_mean, simulated_sd: ``(n,)`` feature units, used when ``simulated`` is None.
+        trial_labels: ``n`` labels for the x axis.
+    """
+    hardware = np.asarray(hardware, float)
+    n = hardware.size
+    x = np.arange(n)
+    labels = trial_labels or [str(i + 1) for i in range(n)]
+    fig, (ax_dist, ax_res) = plt.subplots(1, 2, figsize=(9.0, 3.4), gridspec_kw={"width_ratios": [3, 2]})
+    if simulated is not None:
+        sims = np.asarray(simulated, float)
+        columns = [row[np.isfinite(row)] for row in sims]
+        spread = [c for c in columns if c.size > 1 and np.ptp(c) > 0]
+        positions = [i for i, c in enumerate(columns) if c.size > 1 and np.ptp(c) > 0]
+        if spread:
+            parts = ax_dist.violinplot(spread, positions=positions, widths=0.8, showextrema=False)
+            for body in parts["bodies"]:
+                body.set_alpha(0.35)
+        rng = np.random.default_rng(0)  # fixed jitter: the same figure every time
+        for i, c in enumerate(columns):
+            ax_dist.scatter(i + rng.uniform(-0.15, 0.15, c.size), c, s=6, color="#2166ac", alpha=0.6,
+                            label="simulation" if i == 0 else None)
+    elif simulated_mean is not None:
+        sd = np.nan_to_num(np.asarray(simulated_sd if simulated_sd is not None else np.zeros(n), float))
+        ax_dist.errorbar(x, simulated_mean, yerr=2 * sd, fmt="o", color="#2166ac", capsize=3,
+                         label="simulation mean +- 2 sd")
+    ax_dist.scatter(x, hardware, marker="D", s=36, color="#d6604d", zorder=3, label="hardware")
+    ax_dist.set_xticks(x, labels)
+    ax_dist.set_xlabel("trial")
+    ax_dist.set_ylabel(name)
+    ax_dist.legend(loc="best", fontsize=7)
+    res = np.asarray(residuals, float)
+    finite = np.isfinite(res)
+    edge = max(residual_limit * 1.5, float(np.max(np.abs(res[finite]))) if finite.any() else 0.0) * 1.1
+    shown = np.where(finite, res, np.sign(np.nan_to_num(res, nan=0.0)) * edge)
+    ax_res.axhspan(-residual_limit, residual_limit, color="#cccccc", alpha=0.5, label=f"+-{residual_limit:g}")
+    ax_res.axhline(0.0, color="black", linewidth=0.6)
+    ax_res.scatter(x[finite], shown[finite], marker="D", color="#d6604d")
+    ax_res.scatter(x[~finite & ~np.isnan(res)], shown[~finite & ~np.isnan(res)], marker="^", color="#d6604d",
+                   label="outside a zero spread")
+    ax_res.set_xticks(x, labels)
+    ax_res.set_xlabel("trial")
+    ax_res.set_ylabel("(hardware - sim mean) / sim sd")
+    ax_res.legend(loc="best", fontsize=7)
+    fig.suptitle(f"{name}: {verdict.replace('_', ' ')}" if verdict else name,
+                 color=VERDICT_COLOURS.get(verdict, "black"))
+    fig.tight_layout()
+    buffer = io.BytesIO()
+    fig.savefig(buffer, format="png", dpi=110)
+    plt.close(fig)
+    return buffer.getvalue()
+
+
+def _safe_name(name: str) -> str:
+    return re.sub(r"[^A-Za-z0-9_.-]+", "_", name) or "feature"
+
+
+def plot_shift(report: Any, plots_dir: str | Path) -> list[Path]:
+    """Write ``shift_<feature>.png`` per feature of a ShiftReport into ``plots_dir``; return the paths."""
+    out_dir = Path(plots_dir)
+    out_dir.mkdir(parents=True, exist_ok=True)
+    limit = float(report.settings["residual_limit"])
+    labels = [str(t) for t in report.trial_ids]
+    paths = []
+    for j, feature in enumerate(report.features):
+        sims = None if report.simulated_values is None else report.simulated_values[:, :, j]
+        png = feature_png(feature.name, np.asarray(feature.hardware, float), sims,
+                          np.asarray(feature.residuals, float), limit, feature.verdict,
+                          np.asarray(feature.simulated_mean, float), np.asarray(feature.simulated_sd, float),
+                          labels)
+        path = out_dir / f"shift_{_safe_name(feature.name)}.png"
+        path.write_bytes(png)
+        paths.append(path)
+    return paths
+
+
+def shift_figures(
+    scenario: Any, shift: dict[str, Any], trials: Any, arrays: dict[str, np.ndarray]
+) -> dict[str, bytes]:
+    """PNG bytes per feature name from the stored JSON form of a shift assessment.
+
+    ``arrays`` may hold ``simulated (n x K x p)`` (feature units, columns in the JSON's feature order);
+    without it the simulated mean +- 2 sd per trial is drawn.
+    """
+    features = [f for f in (shift or {}).get("features", []) if isinstance(f, dict)]
+    limit = float((shift.get("settings") or {}).get("residual_limit", 2.0))
+    simulated = arrays.get("simulated") if arrays else None
+    labels = [str(t) for t in shift.get("trial_ids", [])] or None
+    out = {}
+
+    def values(f: dict, key: str) -> np.ndarray:
+        return np.array([math.nan if v is None else float(v) for v in f.get(key) or []], float)
+
+    for j, f in enumerate(features):
+        sims = None
+        if simulated is not None and np.ndim(simulated) == 3 and np.shape(simulated)[2] == len(features):
+            sims = np.asarray(simulated, float)[:, :, j]
+        hw = values(f, "hardware")
+        out[f.get("name", str(j))] = feature_png(
+            str(f.get("name", j)), hw, sims, values(f, "residuals"), limit, str(f.get("verdict", "")),
+            values(f, "simulated_mean"), values(f, "simulated_sd"),
+            labels if labels and len(labels) == hw.size else None,
+        )
+    return out

@@ -1,0 +1,212 @@
+"""calibrate(): fitting the simulator's physics to hardware trials (Kennedy and O'Hagan 2001 view).
+
+Outside truths used here:
+- an analytic simulator whose features are a known linear function of the physics: least squares on
+  exact data has the true physics as its unique minimiser (Gauss-Markov / normal equations), and a
+  quantity no feature depends on leaves the likelihood flat, so it cannot be identified;
+- the stand-in robot (DESIGN.md section 6) with a profile whose physics is set by us, so the truth is known.
+"""
+
+from __future__ import annotations
+
+import shutil
+import sys
+from pathlib import Path
+
+import numpy as np
+import pytest
+from scipy.stats import qmc
+
+from gapgauge import load_scenario
+from gapgauge.compare.calibration import calibrate
+from gapgauge.errors import GapgaugeError, ModelError, ScenarioError
+from gapgauge.records import RolloutBatch
+
+if sys.version_info >= (3, 11):
+    import tomllib
+else:  # pragma: no cover
+    import tomli as tomllib
+
+ROOT = Path(__file__).resolve().parents[1]
+SCENARIO = ROOT / "scenarios" / "push_recovery.toml"
+
+# The truth for the analytic simulator: trunk mass outside the randomisation range [0.9, 1.1] (inside
+# the widened search range [0.8, 1.2]), the rest inside.
+TRUTH = {"trunk_mass_scale": 1.15, "friction": 0.6, "joint_damping": 0.5, "servo_strength": 0.95, "servo_lag": 0.02}
+MATCHED = ("recovery_time", "peak_com_excursion", "cop_path_length", "cop_range", "margin_of_stability",
+           "peak_joint_torque", "positive_work")
+
+
+@pytest.fixture(scope="module")
+def scenario():
+    return load_scenario(SCENARIO)
+
+
+def _linear_simulator(scenario):
+    """Features = a fixed linear map of the (range-normalised) physics, modulated by the first policy
+    parameter so trials differ; friction and disturbance_scale enter no feature."""
+    names = [r.name for r in scenario.physics]
+    nominal = np.array([r.nominal for r in scenario.physics])
+    width = np.array([r.high - r.low for r in scenario.physics])
+    weights = np.zeros((len(MATCHED), len(names)))
+    rng = np.random.default_rng(7)
+    for q in ("trunk_mass_scale", "joint_damping", "servo_strength", "servo_lag"):
+        weights[:, names.index(q)] = rng.normal(size=len(MATCHED))
+    offsets = np.linspace(0.5, 2.0, len(MATCHED))
+    unit = scenario.to_unit
+
+    def simulator(params: np.ndarray, physics: np.ndarray) -> RolloutBatch:
+        z = (physics - nominal) / width  # (n x K)
+        gain = 1.0 + unit(params)[:, :1]  # (n x 1): trials weigh the physics differently
+        values = offsets + gain * (z @ weights.T) + 0.1 * unit(params)[:, 1:2]
+        n = params.shape[0]
+        feats = {f: values[:, j] for j, f in enumerate(MATCHED)}
+        feats["fell"] = np.zeros(n)
+        return RolloutBatch(
+            np.arange(n), params, physics, tuple(names), np.full(n, "ok"), np.full(n, ""),
+            np.zeros(n), feats,
+        )
+
+    return simulator
+
+
+def _trials(scenario, n=5, seed=1):
+    lo, hi = scenario.bounds(safe=True).T
+    # First n points of a scrambled Sobol sequence of 8 (a power of two keeps its balance properties).
+    return lo + qmc.Sobol(scenario.dim, seed=seed).random_base2(3)[:n] * (hi - lo)
+
+
+def _hardware(scenario, simulator, params):
+    truth = np.array([TRUTH.get(r.name, r.nominal) for r in scenario.physics])
+    batch = simulator(params, np.tile(truth, (params.shape[0], 1)))
+    return np.column_stack([batch.features[f] for f in MATCHED])
+
+
+def test_linear_simulator_recovers_truth_and_flags_friction(scenario):
+    sim = _linear_simulator(scenario)
+    params = _trials(scenario)
+    result = calibrate(scenario, params, _hardware(scenario, sim, params), MATCHED, sim, progress=False, seed=3)
+    for p in result.parameters:
+        if p.name == "friction":
+            # No feature depends on friction: the discrepancy is flat along it, so its interval keeps
+            # (nearly) the whole prior width and it must be reported as not identifiable.
+            assert not p.identifiable
+            assert "barely change" in p.reason
+            assert p.sensitivity < 1e-9
+        else:
+            # Exact data from a linear map: the least-squares minimiser is the truth (normal equations).
+            span = p.search_range[1] - p.search_range[0]
+            assert abs(p.estimate - TRUTH[p.name]) < 1e-3 * span, (p.name, p.estimate, TRUTH[p.name])
+            assert p.identifiable, (p.name, p.reason)
+            assert p.interval[0] <= p.estimate <= p.interval[1]
+    # Exact fit: the shift after calibration vanishes, the one before does not.
+    assert result.shift_after.total < 1e-6
+    assert result.shift_before.total > 1e-2
+    assert result.settings["discrepancy_at_estimate"] < 1e-6
+
+
+def test_calibration_is_reproducible_from_its_seed(scenario):
+    sim = _linear_simulator(scenario)
+    params = _trials(scenario)
+    hw = _hardware(scenario, sim, params)
+    kwargs = dict(progress=False, seed=11, generations=3, polish=False, physics_names=["trunk_mass_scale"])
+    a = calibrate(scenario, params, hw, MATCHED, sim, **kwargs)
+    b = calibrate(scenario, params, hw, MATCHED, sim, **kwargs)
+    assert a.to_json() == b.to_json()
+    assert a.to_json()["seed"] == 11
+
+
+def test_json_has_the_contracted_keys(scenario):
+    sim = _linear_simulator(scenario)
+    params = _trials(scenario)
+    result = calibrate(scenario, params, _hardware(scenario, sim, params), MATCHED, sim, progress=False,
+                       physics_names=["trunk_mass_scale", "friction"], generations=3)
+    data = result.to_json()
+    for key in ("parameters", "shift_before", "shift_after", "overlay", "seed", "evaluations"):
+        assert key in data
+    assert [p["name"] for p in data["parameters"]] == ["trunk_mass_scale", "friction"]
+    for p in data["parameters"]:
+        assert set(p) >= {"name", "estimate", "interval", "identifiable"}
+    # Every simulator rollout is counted: 5 trials x every evaluation.
+    assert data["rollouts"] == 5 * data["evaluations"]
+
+
+def test_features_with_no_simulated_spread_are_left_out(scenario):
+    base = _linear_simulator(scenario)
+
+    def sim(params, physics):
+        batch = base(params, physics)
+        batch.features["sway_area"] = np.full(len(batch), 0.25)  # does not move with the physics
+        return batch
+
+    params = _trials(scenario)
+    hw = np.column_stack([_hardware(scenario, base, params), np.full(5, 0.3)])
+    result = calibrate(scenario, params, hw, (*MATCHED, "sway_area"), sim, progress=False, generations=2,
+                       physics_names=["trunk_mass_scale"])
+    assert "sway_area" not in result.features
+    assert "spread" in result.excluded_features["sway_area"]
+
+
+def test_unknown_physics_name_is_a_user_error(scenario):
+    sim = _linear_simulator(scenario)
+    params = _trials(scenario)
+    with pytest.raises(ScenarioError, match="trunk_mass"):
+        calibrate(scenario, params, _hardware(scenario, sim, params), MATCHED, sim,
+                  physics_names=["trunk_mass"], progress=False)
+
+
+def test_trials_without_features_are_a_user_error(scenario):
+    sim = _linear_simulator(scenario)
+    params = _trials(scenario)
+    with pytest.raises(ModelError, match="no hardware feature"):
+        calibrate(scenario, params, np.full((5, 1), np.nan), ["recovery_time"], sim, progress=False)
+    assert issubclass(ModelError, GapgaugeError)
+
+
+def _project_copy(tmp_path: Path) -> Path:
+    """A scenario's project folder (scenarios/ + models/) under tmp, so overlays are written there."""
+    (tmp_path / "scenarios").mkdir()
+    shutil.copytree(ROOT / "models", tmp_path / "models")
+    shutil.copy(SCENARIO, tmp_path / "scenarios" / SCENARIO.name)
+    return tmp_path / "scenarios" / SCENARIO.name
+
+
+def test_overlay_loads_and_carries_the_estimates(tmp_path):
+    base_path = _project_copy(tmp_path)
+    scenario = load_scenario(base_path)
+    sim = _linear_simulator(scenario)
+    params = _trials(scenario)
+    result = calibrate(scenario, params, _hardware(scenario, sim, params), MATCHED, sim, progress=False)
+    overlay_path = result.default_overlay_path()
+    assert overlay_path.parent == base_path.parent
+    overlay_path.write_text(result.overlay_text(overlay_path))
+    calibrated = load_scenario(overlay_path)
+    for p in result.parameters:
+        r = calibrated.physics_range(p.name)
+        if p.identifiable:
+            # The overlay's nominal is the estimate (6 significant digits) inside the narrowed range.
+            assert r.nominal == pytest.approx(p.estimate, rel=1e-5)
+            assert r.low <= r.nominal <= r.high
+            assert r.high - r.low < p.search_range[1] - p.search_range[0]
+        else:
+            base = scenario.physics_range(p.name)
+            assert (r.low, r.high, r.nominal) == (base.low, base.high, base.nominal)
+    # Everything but the physics is the base scenario's.
+    assert calibrated.parameters == scenario.parameters
+    assert calibrated.task == scenario.task
+    assert tomllib.loads(overlay_path.read_text())["extends"] == base_path.name
+
+
+def test_overlay_in_a_sibling_folder_extends_by_relative_path(tmp_path):
+    base_path = _project_copy(tmp_path)
+    scenario = load_scenario(base_path)
+    sim = _linear_simulator(scenario)
+    params = _trials(scenario)
+    result = calibrate(scenario, params, _hardware(scenario, sim, params), MATCHED, sim, progress=False,
+                       physics_names=["trunk_mass_scale"], generations=3)
+    (tmp_path / "calibrated").mkdir()
+    target = tmp_path / "calibrated" / "robot7.toml"
+    target.write_text(result.overlay_text(target))
+    assert tomllib.loads(target.read_text())["extends"] == "../scenarios/push_recovery.toml"
+    assert load_scenario(target).physics_range("trunk_mass_scale").nominal == pytest.approx(
+        result.estimate("trunk_mass_scale").estimate, rel=1e-5)
