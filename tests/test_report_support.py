@@ -18,7 +18,7 @@ from gapgauge.scenario import Scenario
 REPO = Path(__file__).resolve().parents[1]
 HOSTILE_ROBOT = "<script>alert(1)</script>"
 HOSTILE_NOTE = '<img src=x onerror=alert(2)> & "quoted" </td></tr></table>'
-HOSTILE_FILE = "trial_<b>bold</b>_1.csv"
+HOSTILE_FILE = "trial_<b>bold<b>_<img src=x onerror=alert(3)>.csv"  # no slash: a file name
 SHIFT_FEATURES = (
     "recovery_time",
     "peak_com_excursion",
@@ -142,8 +142,14 @@ def results(
                 {"name": "friction", "estimate": 0.62, "interval": [0.56, 0.7], "identifiable": True},
                 {"name": "joint_damping", "estimate": 0.4, "interval": [0.1, 0.95], "identifiable": False},
             ],
-            "shift_before": 2.9,
-            "shift_after": 0.8,
+            "shift_before": {
+                "features": {n: {"rms": 2.9, "verdict": "does_not_carry_over"} for n in SHIFT_FEATURES},
+                "total": 8.4,
+            },
+            "shift_after": {
+                "features": {n: {"rms": 0.8, "verdict": "carries_over"} for n in SHIFT_FEATURES},
+                "total": 0.7,
+            },
             "overlay": "push_recovery.calibrated.toml",
         },
     }

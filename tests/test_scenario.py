@@ -63,7 +63,7 @@ def test_unit_cube_map_round_trips_and_uses_log_axes() -> None:
 
 def test_content_hash_changes_with_content(project: Path) -> None:
     base = load_scenario(project / "scenarios" / "push_recovery.toml")
-    other = load_scenario(_variant(project, "magnitude = 110.0", "magnitude = 100.0"))
+    other = load_scenario(_variant(project, "magnitude = 65.0", "magnitude = 60.0"))
     assert base.content_hash != other.content_hash
 
 
@@ -71,8 +71,8 @@ def test_content_hash_changes_with_content(project: Path) -> None:
     ("old", "new", "key"),
     [
         ('name = "push_recovery"', 'name = "push_recovery"\ncolour = "red"', "colour"),
-        ("low = 80.0\nhigh = 1500.0", "low = 1500.0\nhigh = 80.0", "parameters[0].high"),
-        ("safe_low = 300.0", "safe_low = 50.0", "parameters[0].safe_low"),
+        ("low = 450.0\nhigh = 3000.0", "low = 3000.0\nhigh = 450.0", "parameters[0].high"),
+        ("safe_low = 600.0", "safe_low = 50.0", "parameters[0].safe_low"),
         ('kind = "push"', 'kind = "kick"', "task.kind"),
         ("horizon = 3.0", 'horizon = "long"', "task.horizon"),
         ('role = "stiffness"', 'role = "stiffness"\njoint_typo = 1', "parameters[0].joint_typo"),

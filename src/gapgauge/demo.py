@@ -361,6 +361,9 @@ def run_demo(
         printer.line(
             f"report: {report.path.resolve()}  (JSON: {report.json_path.name}); demo took {seconds:.0f} s"
         )
+    from .report.html import caution_text
+
+    printer.line(caution_text())
     return DemoResult(
         out,
         copies["scenario"],

@@ -72,6 +72,9 @@ POLISH_STEP = 0.02
 MIN_RELATIVE_SPREAD = 1e-9
 #: posterior correlation beyond which two parameters are called confounded.
 CONFOUNDED_CORRELATION = 0.9
+#: chi-square quantile with one degree of freedom at 0.95 (scipy.stats.chi2.ppf(0.95, 1)): Wilks's
+#: likelihood-ratio bound for the settings that fit as well as the best (Bates and Watts 1988, ch. 6).
+CHI2_95_1DOF = 3.841458820694124
 
 DISCREPANCIES = ("standardised", "multiresponse")
 OPTIMISERS = ("differential_evolution",)
@@ -338,6 +341,8 @@ class _Problem:
         self.evaluations = 0
         self.rollouts = 0
         self.tick: Callable[[], None] = lambda: None
+        self.visited: list[np.ndarray] = []  # unit-cube points evaluated, (s x k) each
+        self.visited_criterion: list[np.ndarray] = []  # their criterion, (s,) each
 
     @property
     def n(self) -> int:
@@ -389,7 +394,24 @@ class _Problem:
     def residuals_at(self, u: np.ndarray) -> np.ndarray:
         u = np.atleast_2d(u)
         self.evaluations += u.shape[0]
-        return self.residuals(self.simulate(self.to_physics(u)))
+        r = self.residuals(self.simulate(self.to_physics(u)))
+        self.record(u, r)
+        return r
+
+    def record(self, u: np.ndarray, r: np.ndarray) -> None:
+        self.visited.append(np.clip(np.atleast_2d(u), 0.0, 1.0))
+        self.visited_criterion.append(self.criterion(r))
+
+    def log_likelihood_drop(self, criterion: np.ndarray, tau: np.ndarray) -> np.ndarray:
+        """Drop of the log likelihood from the best visited point, ``(s,)``, for criteria ``(s,)``.
+
+        ``standardised``: ``m (D - D_min) / (2 tau^2)`` with the fitted common error level; ``multiresponse``:
+        ``m (C - C_min)``, the criterion being the profiled negative log likelihood over ``m``.
+        """
+        best = min(float(np.min(c)) for c in self.visited_criterion)
+        if self.mode == "standardised":
+            return self.m * (criterion - best) / (2.0 * float(tau[0]) ** 2)
+        return self.m * (criterion - best)
 
     def feature_rss(self, r: np.ndarray) -> np.ndarray:
         """Residual sum of squares per feature, ``(s x f)``, from residuals ``(s x m)``."""
@@ -608,6 +630,16 @@ def calibrate(
         sd_u = np.sqrt(np.diag(cov))
         lo_u = np.maximum(u_best - Z95 * sd_u, 0.0)
         hi_u = np.minimum(u_best + Z95 * sd_u, 1.0)
+        # Widen by every visited setting the likelihood-ratio test cannot reject (a rugged
+        # discrepancy, e.g. from trials that fell, has far-apart settings that fit about as well,
+        # which a local curvature cannot see).
+        visited = np.vstack(problem.visited)
+        drop = problem.log_likelihood_drop(np.concatenate(problem.visited_criterion), tau)
+        plausible = visited[drop <= 0.5 * CHI2_95_1DOF]
+        laplace_width = hi_u - lo_u
+        lo_u = np.minimum(lo_u, plausible.min(axis=0))
+        hi_u = np.maximum(hi_u, plausible.max(axis=0))
+        widened = (hi_u - lo_u) > laplace_width + 1e-12
         identified = (hi_u - lo_u) < identifiable_fraction
         best_physics = problem.to_physics(u_best)[0]
         after_low, after_high = phys_low.copy(), phys_high.copy()
@@ -628,15 +660,16 @@ def calibrate(
         span = high[c] - low[c]
         fraction = float(hi_u[c] - lo_u[c])
         at_edge = bool(u_best[c] < 0.01 or u_best[c] > 0.99)
+        interval = (float(low[c] + lo_u[c] * span), float(low[c] + hi_u[c] * span))
         reason = _reason(c, names, bool(identified[c]), fraction, sensitivity, signal, tau, corr,
-                         identifiable_fraction)
+                         identifiable_fraction, bool(widened[c]), f"{interval[0]:.3g} to {interval[1]:.3g}")
         if at_edge and signal[c] >= 1.0:
             reason += "; the estimate sits at the edge of the search range, the robot may lie beyond it"
         estimates.append(PhysicalEstimate(
             name=name,
             unit=rng_.unit,
             estimate=float(low[c] + u_best[c] * span),
-            interval=(float(low[c] + lo_u[c] * span), float(low[c] + hi_u[c] * span)),
+            interval=interval,
             sd=float(sd_u[c] * span),
             search_range=(float(low[c]), float(high[c])),
             base_range=(rng_.low, rng_.high),
@@ -839,17 +872,23 @@ def _jacobian(problem: _Problem, u: np.ndarray) -> tuple[np.ndarray, np.ndarray,
     problem.evaluations += points.shape[0]
     simulated = problem.simulate(problem.to_physics(points))
     r = problem.residuals(simulated)
+    problem.record(points, r)
     jac = (r[1:1 + k] - r[1 + k:]).T / (plus - minus)[None]
     return jac, r[0], simulated[0]
 
 
 def _reason(
     c: int, names: Sequence[str], ok: bool, fraction: float, sensitivity: np.ndarray, signal: np.ndarray,
-    tau: np.ndarray, corr: np.ndarray, threshold: float,
+    tau: np.ndarray, corr: np.ndarray, threshold: float, widened: bool, range_text: str,
 ) -> str:
     pct = f"{100 * fraction:.0f}%"
     if ok:
         return f"the 95% interval spans {pct} of the search range"
+    if widened and signal[c] >= 1.0:
+        return (
+            f"settings far apart fit about as well (not rejected by the likelihood-ratio test at 95%): "
+            f"from {range_text}, {pct} of the search range"
+        )
     if signal[c] < 1.0:
         return (
             f"the matched features barely change with it: {sensitivity[c]:.2g} simulated spreads across "

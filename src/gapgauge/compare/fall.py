@@ -33,20 +33,23 @@ class FallModel:
     def __init__(self, **mf_options: Any):
         self.mf_options = mf_options
 
-    def fit(self, X_low: np.ndarray, margin_low: np.ndarray, X_high: np.ndarray,
-            margin_high: np.ndarray) -> FallModel:
+    def fit(
+        self, X_low: np.ndarray, margin_low: np.ndarray, X_high: np.ndarray, margin_high: np.ndarray
+    ) -> FallModel:
         """Fit to simulated margins ``X_low (n x dim)`` (unit cube), ``margin_low (n,)`` m and the
         hardware trials' ``X_high (k x dim)``, ``margin_high (k,)`` m (``k`` may be 0)."""
         self.model_ = MultiFidelityGP(**self.mf_options).fit(X_low, margin_low, X_high, margin_high)
         return self
 
-    def predict(self, X: np.ndarray, return_std: bool = False,
-                observation: bool = False) -> np.ndarray | tuple[np.ndarray, np.ndarray]:
+    def predict(
+        self, X: np.ndarray, return_std: bool = False, observation: bool = False
+    ) -> np.ndarray | tuple[np.ndarray, np.ndarray]:
         """Margin of stability on hardware at ``X (n x dim)`` (unit cube): mean (and sd), m."""
         return self.model_.predict(X, return_std=return_std, observation=observation)
 
-    def log_marginal_likelihood(self, theta: np.ndarray | None = None,
-                                eval_gradient: bool = False) -> float | tuple[float, np.ndarray]:
+    def log_marginal_likelihood(
+        self, theta: np.ndarray | None = None, eval_gradient: bool = False
+    ) -> float | tuple[float, np.ndarray]:
         return self.model_.log_marginal_likelihood(theta, eval_gradient)
 
     def fall_probability(self, X: np.ndarray) -> np.ndarray:

@@ -124,7 +124,8 @@ class ExactGP:
             raise ValueError("give basis values exactly when basis_prior is set")
         dim = X.shape[1]
         self.kernel_ = (
-            Matern52(1.0, np.full(dim, default_length_scale(dim))) if self.kernel is None
+            Matern52(1.0, np.full(dim, default_length_scale(dim)))
+            if self.kernel is None
             else Matern52(self.kernel.variance, np.broadcast_to(self.kernel.length_scale, (dim,)))
         )
         self.noise_ = float(self.noise)
@@ -180,7 +181,10 @@ class ExactGP:
         K, _, _ = self._covariance(self.theta)
         n = K.shape[0]
         if self.basis_train_ is not None and n == 0:
-            self.coef_, self.coef_cov_ = np.asarray(self.basis_prior[0], float), np.asarray(self.basis_prior[1], float)
+            self.coef_, self.coef_cov_ = (
+                np.asarray(self.basis_prior[0], float),
+                np.asarray(self.basis_prior[1], float),
+            )
             residual = self.y_train_
         elif self.basis_train_ is not None:
             b0, B = self.basis_prior
@@ -234,7 +238,9 @@ class ExactGP:
         grad[-1] = 0.5 * noise * np.trace(inner)
         return float(value), grad
 
-    def log_posterior(self, theta: np.ndarray, eval_gradient: bool = False) -> float | tuple[float, np.ndarray]:
+    def log_posterior(
+        self, theta: np.ndarray, eval_gradient: bool = False
+    ) -> float | tuple[float, np.ndarray]:
         """Log marginal likelihood plus the log hyperprior (the objective of the optimiser)."""
         lp, lp_grad = log_normal_prior(np.asarray(theta, dtype=float), self.hyperprior)
         if not eval_gradient:
@@ -244,7 +250,10 @@ class ExactGP:
 
     # ---- prediction -----------------------------------------------------------------------
     def predict(
-        self, X: np.ndarray, return_std: bool = False, basis: np.ndarray | None = None,
+        self,
+        X: np.ndarray,
+        return_std: bool = False,
+        basis: np.ndarray | None = None,
         observation: bool = False,
     ) -> np.ndarray | tuple[np.ndarray, np.ndarray]:
         """Predictive mean (and sd) at ``X (n x dim)``, in the units of ``y`` given to :meth:`fit`.
@@ -271,8 +280,11 @@ class ExactGP:
         if not return_std:
             return mean
         # Alg 2.1 line 5-6: v = L \ k*, var = k** - v^T v (no data: the prior variance)
-        V = (solve_triangular(self.L_, Ks.T, lower=CHOLESKY_LOWER, check_finite=False) if self.L_.size
-             else np.zeros((0, X.shape[0])))
+        V = (
+            solve_triangular(self.L_, Ks.T, lower=CHOLESKY_LOWER, check_finite=False)
+            if self.L_.size
+            else np.zeros((0, X.shape[0]))
+        )
         var = prior_var - np.einsum("ij,ij->j", V, V)
         var = np.maximum(var, 0.0) + (self.noise_ if observation else 0.0)
         return mean, np.sqrt(var) * self._y_std
@@ -289,20 +301,35 @@ class ExactGP:
             "y_std": self._y_std,
             "has_basis": self.basis_train_ is not None,
         }
-        arrays = {"X_train": self.X_train_, "y_train": self.y_train_, "alpha_vector": self.alpha_,
-                  "L": self.L_, "extra_diagonal": np.broadcast_to(np.asarray(self.alpha, float),
-                                                                  self.y_train_.shape).copy()}
+        arrays = {
+            "X_train": self.X_train_,
+            "y_train": self.y_train_,
+            "alpha_vector": self.alpha_,
+            "L": self.L_,
+            "extra_diagonal": np.broadcast_to(np.asarray(self.alpha, float), self.y_train_.shape).copy(),
+        }
         if self.basis_train_ is not None:
-            arrays.update(basis_train=self.basis_train_, basis_mean=self.basis_prior[0],
-                          basis_cov=self.basis_prior[1], coef=self.coef_, coef_cov=self.coef_cov_)
+            arrays.update(
+                basis_train=self.basis_train_,
+                basis_mean=self.basis_prior[0],
+                basis_cov=self.basis_prior[1],
+                coef=self.coef_,
+                coef_cov=self.coef_cov_,
+            )
         return params, arrays
 
     @classmethod
     def from_state(cls, params: dict[str, Any], arrays: dict[str, np.ndarray]) -> ExactGP:
         kernel = Matern52(params["kernel"]["variance"], np.asarray(params["kernel"]["length_scale"]))
         basis_prior = (arrays["basis_mean"], arrays["basis_cov"]) if params["has_basis"] else None
-        gp = cls(kernel, params["noise"], alpha=np.asarray(arrays["extra_diagonal"]),
-                 normalize_y=params["normalize_y"], optimize=False, basis_prior=basis_prior)
+        gp = cls(
+            kernel,
+            params["noise"],
+            alpha=np.asarray(arrays["extra_diagonal"]),
+            normalize_y=params["normalize_y"],
+            optimize=False,
+            basis_prior=basis_prior,
+        )
         gp.kernel_ = kernel
         gp.noise_ = float(params["noise"])
         gp._y_mean, gp._y_std = float(params["y_mean"]), float(params["y_std"])

@@ -7,18 +7,20 @@
 fitted recursively as in Le Gratiet and Garnier (2014): first the simulation level ``low`` alone
 (a :class:`~gapgauge.compare.sparse.SparseGP` for many rollouts, an
 :class:`~gapgauge.compare.gp.ExactGP` for few), then the hardware level given the simulation
-level's posterior mean at the trial parameters. As in Le Gratiet and Garnier, rho and a constant
-offset are regression coefficients of the discrepancy GP, with a Gaussian prior; their posterior
-given the discrepancy's hyperparameters is Gaussian and exact (Rasmussen and Williams 2006, section
-2.7, eq. 2.42): the basis functions are ``[low mean(x), 1]``.
+level's posterior mean at the trial parameters. As in Le Gratiet and Garnier, rho, a constant
+offset and a linear trend are regression coefficients of the discrepancy GP, with a Gaussian prior;
+their posterior given the discrepancy's hyperparameters is Gaussian and exact (Rasmussen and
+Williams 2006, section 2.7, eq. 2.42): the basis functions are ``[low mean(x), 1, x - 0.5]``.
 
 What it adds, because hardware trials are few (2 to 10):
 
-- weak priors: rho ~ N(1, 0.5^2) (simulation right up to a factor); offset ~ N(0, 1) in
-  simulation-sd units; log-normal priors on the discrepancy's scale (median 0.5 simulation sd),
-  length-scales (median :func:`~gapgauge.compare.kernels.default_length_scale`) and the hardware
-  noise (median the simulation's own noise: physics randomisation is the best guess of trial-to-trial
-  spread); the discrepancy's hyperparameters are the maximum a posteriori;
+- weak priors: rho ~ N(1, 0.5^2) (simulation right up to a factor); offset ~ N(0, 1) and a linear
+  trend in the parameters (Le Gratiet and Garnier's regression part of the discrepancy) with slopes
+  ~ N(0, 2^2 / dim), both in simulation-sd units over the unit cube; log-normal priors on the
+  discrepancy's scale (median 0.5 simulation sd), length-scales (median
+  :func:`~gapgauge.compare.kernels.default_length_scale`) and the hardware noise (median the
+  simulation's own noise: physics randomisation is the best guess of trial-to-trial spread); the
+  discrepancy's hyperparameters are the maximum a posteriori;
 - the simulation level's own uncertainty at the trial parameters enters the hardware level as
   extra per-trial variance ``E[rho^2] var_low(x_i)`` (at rho's prior second moment, which keeps rho a
   linear coefficient);
@@ -46,7 +48,9 @@ from .sparse import SparseGP
 SPARSE_THRESHOLD = 2000
 RHO_PRIOR = (1.0, 0.5)  # mean, sd
 OFFSET_PRIOR_SD = 1.0  # simulation-sd units
-TREND_PRIOR_SD = 1.0  # simulation-sd units over the whole unit cube, shared among the dimensions
+# simulation-sd units across the whole unit cube, shared among the dimensions: a weak prior that lets
+# a smooth (linear) gap between simulation and hardware be a trend rather than a wiggly GP
+TREND_PRIOR_SD = 2.0
 DISCREPANCY_SD_PRIOR = (0.5, 1.0)  # median (simulation-sd units), sd of its log
 LENGTH_SCALE_LOG_SD = 1.0
 NOISE_LOG_SD = 1.5  # sd of the log of the hardware noise sd
@@ -63,6 +67,8 @@ class MultiFidelityGP:
         max_inducing: inducing points of the sparse simulation level.
         sparse_threshold: use the sparse GP above this many simulation points.
         n_restarts: extra seeded optimiser starts for the discrepancy's hyperparameters.
+        trend_prior_sd: sd of the discrepancy's linear trend across the unit cube (simulation-sd
+            units, shared among the dimensions), or None for no trend.
         random_state: seed or Generator (sparse subsample, k-means++, restarts).
     """
 
@@ -88,10 +94,11 @@ class MultiFidelityGP:
         self.random_state = random_state
 
     # ---- fit ------------------------------------------------------------------------------
-    def fit(self, X_low: np.ndarray, y_low: np.ndarray, X_high: np.ndarray, y_high: np.ndarray) -> MultiFidelityGP:
-        """Fit both levels: simulation ``X_low (n x dim), y_low (n,)``; hardware ``X_high (k x dim), y_high (k,)``.
-
-        Inputs in the unit cube; targets in the same (objective) units at both levels.
+    def fit(
+        self, X_low: np.ndarray, y_low: np.ndarray, X_high: np.ndarray, y_high: np.ndarray
+    ) -> MultiFidelityGP:
+        """Fit both levels: simulation ``X_low (n x dim), y_low (n,)``; hardware ``X_high (k x dim),
+        y_high (k,)``. Inputs in the unit cube; targets in the same (objective) units at both levels.
         """
         X_low = np.atleast_2d(np.asarray(X_low, dtype=float))
         y_low = np.asarray(y_low, dtype=float).ravel()
@@ -100,7 +107,9 @@ class MultiFidelityGP:
         rng = np.random.default_rng(self.random_state)
         self._seed_high = int(rng.integers(2**31))
         if y_low.size > self.sparse_threshold:
-            low: SparseGP | ExactGP = SparseGP(n_inducing=self.max_inducing, normalize_y=True, random_state=rng)
+            low: SparseGP | ExactGP = SparseGP(
+                n_inducing=self.max_inducing, normalize_y=True, random_state=rng
+            )
         else:
             low = ExactGP(noise=0.1, normalize_y=True, n_restarts=1, random_state=rng)
         self.low_ = low.fit(X_low, y_low)
@@ -162,7 +171,8 @@ class MultiFidelityGP:
         else:
             kernel, noise = self.delta_.kernel_, self.delta_.noise_
         delta = ExactGP(
-            kernel, noise,
+            kernel,
+            noise,
             alpha=second_moment * sd**2,
             normalize_y=False,
             optimize=optimize and y_high.size > 0,
@@ -213,8 +223,9 @@ class MultiFidelityGP:
         in standardised units; ``theta`` as :attr:`ExactGP.theta` of the discrepancy."""
         return self.delta_.log_marginal_likelihood(theta, eval_gradient)
 
-    def predict(self, X: np.ndarray, return_std: bool = False,
-                observation: bool = False) -> np.ndarray | tuple[np.ndarray, np.ndarray]:
+    def predict(
+        self, X: np.ndarray, return_std: bool = False, observation: bool = False
+    ) -> np.ndarray | tuple[np.ndarray, np.ndarray]:
         """Hardware-level mean (and sd) at ``X (n x dim)`` (unit cube), in objective units.
 
         The sd is of the latent hardware function; with ``observation`` the hardware noise is added.
@@ -229,8 +240,9 @@ class MultiFidelityGP:
         var = delta_sd**2 + rho_second_moment * sd**2
         return mean * self.y_std_ + self.y_mean_, np.sqrt(var) * self.y_std_
 
-    def predict_low(self, X: np.ndarray, return_std: bool = False,
-                    observation: bool = False) -> np.ndarray | tuple[np.ndarray, np.ndarray]:
+    def predict_low(
+        self, X: np.ndarray, return_std: bool = False, observation: bool = False
+    ) -> np.ndarray | tuple[np.ndarray, np.ndarray]:
         """The simulation level alone at ``X (n x dim)`` (unit cube), objective units."""
         return self.low_.predict(X, return_std=return_std, observation=observation)
 
@@ -252,6 +264,7 @@ class MultiFidelityGP:
             "max_inducing": self.max_inducing,
             "sparse_threshold": self.sparse_threshold,
             "n_restarts": self.n_restarts,
+            "trend_prior_sd": self.trend_prior_sd,
             "seed_high": self._seed_high,
             "y_mean": self.y_mean_,
             "y_std": self.y_std_,
@@ -266,10 +279,15 @@ class MultiFidelityGP:
 
     @classmethod
     def from_state(cls, params: dict[str, Any], arrays: dict[str, np.ndarray]) -> MultiFidelityGP:
-        model = cls(rho_prior=tuple(params["rho_prior"]), offset_prior_sd=params["offset_prior_sd"],
-                    discrepancy_sd_prior=tuple(params["discrepancy_sd_prior"]),
-                    max_inducing=params["max_inducing"], sparse_threshold=params["sparse_threshold"],
-                    n_restarts=params["n_restarts"])
+        model = cls(
+            rho_prior=tuple(params["rho_prior"]),
+            offset_prior_sd=params["offset_prior_sd"],
+            discrepancy_sd_prior=tuple(params["discrepancy_sd_prior"]),
+            max_inducing=params["max_inducing"],
+            sparse_threshold=params["sparse_threshold"],
+            n_restarts=params["n_restarts"],
+            trend_prior_sd=params["trend_prior_sd"],
+        )
         low_arrays = {k[4:]: v for k, v in arrays.items() if k.startswith("low.")}
         delta_arrays = {k[6:]: v for k, v in arrays.items() if k.startswith("delta.")}
         low_cls = SparseGP if params["low"]["model"] == "SparseGP" else ExactGP

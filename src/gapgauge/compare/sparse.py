@@ -126,8 +126,15 @@ class SparseGP:
 
     # ---- the bound ------------------------------------------------------------------------
     @staticmethod
-    def _bound(theta: np.ndarray, X: np.ndarray, y: np.ndarray, Z: np.ndarray,
-               kernel: Matern52, eval_gradient: bool, jitter: float = INDUCING_JITTER) -> tuple[float, np.ndarray]:
+    def _bound(
+        theta: np.ndarray,
+        X: np.ndarray,
+        y: np.ndarray,
+        Z: np.ndarray,
+        kernel: Matern52,
+        eval_gradient: bool,
+        jitter: float = INDUCING_JITTER,
+    ) -> tuple[float, np.ndarray]:
         kern = kernel.clone_with_theta(theta[:-1])
         noise = float(np.exp(theta[-1]))
         sigma = np.sqrt(noise)
@@ -146,8 +153,14 @@ class SparseGP:
         c = solve_triangular(LB, Ay, lower=True, check_finite=False) / sigma
         trace_K = n * kern.variance
         trace_Q = noise * np.trace(AAT)
-        value = (-0.5 * n * LOG2PI - np.log(np.diag(LB)).sum() - 0.5 * n * np.log(noise)
-                 - 0.5 * (y @ y) / noise + 0.5 * (c @ c) - 0.5 * (trace_K - trace_Q) / noise)
+        value = (
+            -0.5 * n * LOG2PI
+            - np.log(np.diag(LB)).sum()
+            - 0.5 * n * np.log(noise)
+            - 0.5 * (y @ y) / noise
+            + 0.5 * (c @ c)
+            - 0.5 * (trace_K - trace_Q) / noise
+        )
         if not eval_gradient:
             return float(value), np.zeros_like(theta)
         Binv_Ay = cho_solve((LB, True), Ay, check_finite=False)
@@ -179,8 +192,9 @@ class SparseGP:
         optimiser saw); ``theta`` as in :attr:`theta`.
         """
         theta = self.theta if theta is None else np.asarray(theta, dtype=float)
-        value, grad = self._bound(theta, self._X_opt, self._y_opt, self._Z_opt, self.kernel_, eval_gradient,
-                                  self.jitter)
+        value, grad = self._bound(
+            theta, self._X_opt, self._y_opt, self._Z_opt, self.kernel_, eval_gradient, self.jitter
+        )
         return (value, grad) if eval_gradient else value
 
     # ---- fit ------------------------------------------------------------------------------
@@ -206,7 +220,8 @@ class SparseGP:
             self._y_mean, self._y_std = 0.0, 1.0
         ys = (y - self._y_mean) / self._y_std
         self.kernel_ = (
-            Matern52(1.0, np.full(dim, default_length_scale(dim))) if self.kernel is None
+            Matern52(1.0, np.full(dim, default_length_scale(dim)))
+            if self.kernel is None
             else Matern52(self.kernel.variance, np.broadcast_to(self.kernel.length_scale, (dim,)))
         )
         self.noise_ = float(self.noise)
@@ -217,7 +232,9 @@ class SparseGP:
         if self.inducing is not None:
             self._Z_opt = np.asarray(self.inducing, dtype=float)
         else:
-            self._Z_opt = self._X_opt[kmeans_plusplus(self._X_opt, min(m, self.n_inducing_subsample, sub.size), rng)]
+            self._Z_opt = self._X_opt[
+                kmeans_plusplus(self._X_opt, min(m, self.n_inducing_subsample, sub.size), rng)
+            ]
         if self.optimize:
             self._optimise(rng)
 
@@ -240,7 +257,9 @@ class SparseGP:
         scale = 1.0 / self._X_opt.shape[0]
 
         def objective(theta: np.ndarray) -> tuple[float, np.ndarray]:
-            value, grad = self._bound(theta, self._X_opt, self._y_opt, self._Z_opt, self.kernel_, True, self.jitter)
+            value, grad = self._bound(
+                theta, self._X_opt, self._y_opt, self._Z_opt, self.kernel_, True, self.jitter
+            )
             lp, lp_grad = log_normal_prior(theta, self.hyperprior)
             if not np.isfinite(value):
                 return 1e25, np.zeros_like(theta)
@@ -253,8 +272,14 @@ class SparseGP:
             starts.append(np.clip(draw, bounds[:, 0], bounds[:, 1]))
         best = None
         for start in starts:
-            res = minimize(objective, start, jac=True, method="L-BFGS-B", bounds=bounds,
-                           options={"maxiter": self.max_iter})
+            res = minimize(
+                objective,
+                start,
+                jac=True,
+                method="L-BFGS-B",
+                bounds=bounds,
+                options={"maxiter": self.max_iter},
+            )
             if best is None or res.fun < best.fun:
                 best = res
         self.kernel_.theta = best.x[:-1]
@@ -269,26 +294,33 @@ class SparseGP:
         AAT = np.zeros((m, m))
         Ay = np.zeros(m)
         for start in range(0, X.shape[0], CHUNK):
-            Xc = X[start:start + CHUNK]
+            Xc = X[start : start + CHUNK]
             A = solve_triangular(Luu, kern(Z, Xc), lower=True, check_finite=False) / sigma
             AAT += A @ A.T
-            Ay += A @ ys[start:start + CHUNK]
+            Ay += A @ ys[start : start + CHUNK]
         LB = cholesky(np.eye(m) + AAT, lower=CHOLESKY_LOWER, check_finite=False)
         c = solve_triangular(LB, Ay, lower=True, check_finite=False) / sigma
         self.inducing_ = Z
         self.L_uu_ = Luu
         self.L_B_ = LB
         # mean(x) = k_u(x)^T alpha_, alpha_ = L_uu^-T L_B^-T c
-        self.alpha_ = solve_triangular(Luu, solve_triangular(LB, c, lower=True, trans="T"), lower=True, trans="T")
+        self.alpha_ = solve_triangular(
+            Luu, solve_triangular(LB, c, lower=True, trans="T"), lower=True, trans="T"
+        )
         n = X.shape[0]
         self.bound_ = float(
-            -0.5 * n * LOG2PI - np.log(np.diag(LB)).sum() - 0.5 * n * np.log(noise) - 0.5 * (ys @ ys) / noise
-            + 0.5 * (c @ c) - 0.5 * (n * kern.variance - noise * np.trace(AAT)) / noise
+            -0.5 * n * LOG2PI
+            - np.log(np.diag(LB)).sum()
+            - 0.5 * n * np.log(noise)
+            - 0.5 * (ys @ ys) / noise
+            + 0.5 * (c @ c)
+            - 0.5 * (n * kern.variance - noise * np.trace(AAT)) / noise
         )
 
     # ---- prediction -----------------------------------------------------------------------
-    def predict(self, X: np.ndarray, return_std: bool = False,
-                observation: bool = False) -> np.ndarray | tuple[np.ndarray, np.ndarray]:
+    def predict(
+        self, X: np.ndarray, return_std: bool = False, observation: bool = False
+    ) -> np.ndarray | tuple[np.ndarray, np.ndarray]:
         """Predictive mean (and sd) at ``X (n x dim)`` in the units of the fitted ``y``.
 
         The sd is of the latent function; with ``observation`` the noise variance is added.
@@ -315,7 +347,12 @@ class SparseGP:
             "n_train": self.n_train_,
             "bound": self.bound_,
         }
-        arrays = {"inducing": self.inducing_, "alpha_vector": self.alpha_, "L_uu": self.L_uu_, "L_B": self.L_B_}
+        arrays = {
+            "inducing": self.inducing_,
+            "alpha_vector": self.alpha_,
+            "L_uu": self.L_uu_,
+            "L_B": self.L_B_,
+        }
         return params, arrays
 
     @classmethod

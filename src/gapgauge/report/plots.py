@@ -373,7 +373,7 @@ def calibration_intervals(
     ax.invert_yaxis()
     ax.set_xlim(-0.25, 1.25)
     ax.axvspan(0, 1, color="#eeeeee", zorder=0)
-    ax.set_xlabel("position in the scenario's randomisation range (0 = low, 1 = high)")
+    ax.set_xlabel("position in the randomisation range (0 = low, 1 = high)")
     return _png(fig)
 
 

@@ -175,10 +175,21 @@ def interval(value: Any) -> tuple[float, float] | None:
     return None
 
 
+def shift_features(shift: dict[str, Any] | None) -> list[dict[str, Any]]:
+    """The per-feature entries of a shift result: a list of ``{"name", "verdict", ...}`` (compare/shift.py)
+    or a mapping name -> ``{"verdict", ...}`` (the before/after shifts of compare/calibration.py)."""
+    features = shift.get("features") if isinstance(shift, dict) else None
+    if isinstance(features, dict):
+        return [{"name": name, **entry} for name, entry in features.items() if isinstance(entry, dict)]
+    if isinstance(features, list):
+        return [f for f in features if isinstance(f, dict)]
+    return []
+
+
 def shift_counts(shift: dict[str, Any] | None) -> dict[str, int]:
     counts = dict.fromkeys(VERDICT_WORDS, 0)
-    for feature in (shift or {}).get("features", []) or []:
-        verdict = feature.get("verdict") if isinstance(feature, dict) else None
+    for feature in shift_features(shift):
+        verdict = feature.get("verdict")
         if verdict in counts:
             counts[verdict] += 1
     return counts
@@ -290,18 +301,13 @@ def decide(data: ReportData) -> Decision:
             )
         overlay = overlay_path(calibration)
         after = calibration.get("shift_after")
-        if (
-            isinstance(after, dict)
-            and isinstance(after.get("shifted"), list)
-            and isinstance(after.get("features"), dict)
-        ):
-            reasons.append(
-                f"after calibration {len(after['shifted'])} of {len(after['features'])} matched features "
-                "are still shifted"
-            )
-        elif isinstance(after, dict) and after.get("features"):
+        after_features = shift_features(after)
+        if after_features:
             after_bad = shift_counts(after)["does_not_carry_over"]
-            reasons.append(f"after calibration {after_bad} of {total} features do not carry over")
+            reasons.append(
+                f"at the calibrated physics {after_bad} of {len(after_features)} matched features "
+                "do not carry over"
+            )
         pinned = [
             p.get("name")
             for p in calibration.get("parameters", [])

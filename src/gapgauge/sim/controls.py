@@ -120,11 +120,12 @@ def build_controls(
 
     if task.kind == "platform":
         travel = task.magnitude * scale
-        out[:, :, ctrl0 + lay.platform_drive_id] = travel[:, None] * minimum_jerk(t, task.onset, task.duration)[None, :]
+        profile = minimum_jerk(t, task.onset, task.duration)
+        out[:, :, ctrl0 + lay.platform_drive_id] = travel[:, None] * profile[None, :]
     else:
         body = mujoco.mj_name2id(base, mujoco.mjtObj.mjOBJ_BODY, task.body)
         if body < 0:
-            raise ValueError(f"scenario {scenario.name!r}: task.body {task.body!r} is not a body of the model")
+            raise ValueError(f"scenario {scenario.name!r}: task.body {task.body!r} is not a model body")
         x0 = _offset(base, CONTROL_SPEC, mujoco.mjtState.mjSTATE_XFRC_APPLIED)
         push = (t >= task.onset - eps) & (t < task.onset + task.duration - eps)
         out[:, push, x0 + 6 * body] = (task.magnitude * scale)[:, None]

@@ -123,7 +123,8 @@ def _layout(model: mujoco.MjModel) -> ModelLayout:
     root_ids = np.array([ident(jnt, n) for n in ROOT_JOINTS])
     contact = np.flatnonzero((model.geom_contype != 0) | (model.geom_conaffinity != 0))
     sensor = {
-        model.sensor(i).name: (int(model.sensor_adr[i]), int(model.sensor_dim[i])) for i in range(model.nsensor)
+        model.sensor(i).name: (int(model.sensor_adr[i]), int(model.sensor_dim[i]))
+        for i in range(model.nsensor)
     }
 
     # Heel and toe are spheres under a flat foot: put their lowest points on the platform top.

@@ -43,7 +43,7 @@ SUB_BATCH = 128
 
 
 def _channels(sd: np.ndarray, lay: ModelLayout, with_cop: bool) -> dict[str, np.ndarray]:
-    """Trajectory channels (SI) from sensor data ``(nbatch x nstep x nsensordata)``; each ``(nbatch x nstep)``."""
+    """Trajectory channels (SI), each ``(nbatch x nstep)``, from ``sd (nbatch x nstep x nsensordata)``."""
 
     def s(name: str, axis: int = 0) -> np.ndarray:
         return sd[:, :, lay.sensor[name][0] + axis]
@@ -141,7 +141,7 @@ def simulate(
     params = np.array(params, dtype=float, ndmin=2)
     n = params.shape[0]
     if params.ndim != 2 or params.shape[1] != scenario.dim:
-        raise ValueError(f"params must be (n x {scenario.dim}) for scenario {scenario.name!r}, got {params.shape}")
+        raise ValueError(f"params must be (n x {scenario.dim}) for {scenario.name!r}, got {params.shape}")
     k = len(scenario.physics)
     if physics is None:
         physics = np.tile([r.nominal for r in scenario.physics], (n, 1)).astype(float)
@@ -164,8 +164,8 @@ def simulate(
 
     finite_in = np.isfinite(params).all(axis=1) & np.isfinite(physics).all(axis=1)
     for i in np.flatnonzero(~finite_in):
-        bad = [p.name for p, v in zip(scenario.parameters, params[i]) if not np.isfinite(v)]
-        bad += [r.name for r, v in zip(scenario.physics, physics[i]) if not np.isfinite(v)]
+        bad = [p.name for p, v in zip(scenario.parameters, params[i], strict=True) if not np.isfinite(v)]
+        bad += [r.name for r, v in zip(scenario.physics, physics[i], strict=True) if not np.isfinite(v)]
         reason[i] = f"not simulated: non-finite input {', '.join(bad)}"
     run = np.flatnonzero(finite_in)
 
@@ -197,7 +197,7 @@ def simulate(
 
             why = _divergence(st, sd, offsets, base.nv, dt)
             good = np.array([not w for w in why])
-            for r, w in zip(rows, why):
+            for r, w in zip(rows, why, strict=True):
                 reason[r] = w
             ch = _channels(sd, lay, with_cop=return_trajectory)
             if full is not None:
@@ -232,7 +232,8 @@ def simulate(
     if not return_trajectory:
         return batch
     if full is None or not full:
-        full = {c: np.full((n, nstep), np.nan) for c in _channels(np.zeros((0, nstep, base.nsensordata)), lay, True)}
+        empty = np.zeros((0, nstep, base.nsensordata))
+        full = {c: np.full((n, nstep), np.nan) for c in _channels(empty, lay, True)}
     meta = {"source": "simulation", "scenario": scenario.name, "scenario_hash": scenario.content_hash,
             "indices": indices.tolist()}
     return batch, Trajectory(t, full, onset=task.onset, meta=meta)
