@@ -76,9 +76,16 @@ def test_content_hash_changes_with_content(project: Path) -> None:
         ('kind = "push"', 'kind = "kick"', "task.kind"),
         ("horizon = 3.0", 'horizon = "long"', "task.horizon"),
         ('role = "stiffness"', 'role = "stiffness"\njoint_typo = 1', "parameters[0].joint_typo"),
-        ("[physics.friction]\nunit = \"1\"\nlow = 0.5", "[physics.friction]\nunit = \"1\"\nlow = -0.5", "physics.friction.low"),
-        ('ankle_angle = { column = "ankle_pos_deg", unit = "deg" }',
-         'ankle_angle = { column = "ankle_pos_deg", unit = "mm" }', "hardware.columns.ankle_angle.unit"),
+        (
+            '[physics.friction]\nunit = "1"\nlow = 0.5',
+            '[physics.friction]\nunit = "1"\nlow = -0.5',
+            "physics.friction.low",
+        ),
+        (
+            'ankle_angle = { column = "ankle_pos_deg", unit = "deg" }',
+            'ankle_angle = { column = "ankle_pos_deg", unit = "mm" }',
+            "hardware.columns.ankle_angle.unit",
+        ),
         ("peak_com_excursion = 10.0", "peak_com_excursiom = 10.0", "objective.weights.peak_com_excursiom"),
     ],
 )

@@ -40,8 +40,13 @@ class RolloutBatch:
 
     def subset(self, mask) -> RolloutBatch:
         return RolloutBatch(
-            self.indices[mask], self.params[mask], self.physics[mask], self.physics_names,
-            self.status[mask], self.reason[mask], self.objective[mask],
+            self.indices[mask],
+            self.params[mask],
+            self.physics[mask],
+            self.physics_names,
+            self.status[mask],
+            self.reason[mask],
+            self.objective[mask],
             {k: v[mask] for k, v in self.features.items()},
             None if self.run_ids is None else self.run_ids[mask],
         )

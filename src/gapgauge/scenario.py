@@ -242,9 +242,7 @@ class Scenario:
         if missing:
             raise ScenarioError(f"{source}: missing parameter(s) {', '.join(missing)}; give a value for each")
         if unknown:
-            raise ScenarioError(
-                f"{source}: unknown parameter(s) {', '.join(unknown)}; known: {', '.join(names)}"
-            )
+            raise ScenarioError(f"{source}: unknown parameter(s) {', '.join(unknown)}; known: {', '.join(names)}")
         out = np.empty(len(names))
         for i, p in enumerate(self.parameters):
             v = values[p.name]
@@ -258,7 +256,7 @@ class Scenario:
         return out
 
     def params_to_mapping(self, x: np.ndarray) -> dict[str, float]:
-        return {p.name: float(v) for p, v in zip(self.parameters, np.asarray(x, dtype=float))}
+        return {p.name: float(v) for p, v in zip(self.parameters, np.asarray(x, dtype=float), strict=True)}
 
     def physics_nominal(self) -> dict[str, float]:
         return {r.name: r.nominal for r in self.physics}
@@ -339,7 +337,9 @@ class _Reader:
         extra = [k for k in self.table if k not in self.used]
         if extra:
             k = extra[0]
-            raise self.fail(k, "is not a known key", "remove it or check its spelling (see scenarios/push_recovery.toml)")
+            raise self.fail(
+                k, "is not a known key", "remove it or check its spelling (see scenarios/push_recovery.toml)"
+            )
 
 
 def _short(value: Any) -> str:
@@ -365,7 +365,8 @@ def _read_toml(path: Path) -> dict:
     size = path.stat().st_size
     if size > MAX_SCENARIO_BYTES:
         raise ScenarioError(
-            f"{path}: file is {size} bytes, more than a scenario can be ({MAX_SCENARIO_BYTES}); check it is the right file"
+            f"{path}: file is {size} bytes, more than a scenario can be ({MAX_SCENARIO_BYTES}); "
+            "check it is the right file"
         )
     raw = path.read_bytes()
     try:
@@ -381,7 +382,9 @@ def _read_toml(path: Path) -> dict:
 def _resolve_inside(path: Path, key: str, value: str, root: Path, suffix: str) -> Path:
     """Resolve a path named in a scenario, refusing absolute paths and paths that leave ``root``."""
     if Path(value).is_absolute():
-        raise ScenarioError(f"{path}: key '{key}': absolute path {value!r} is not allowed; give a path relative to the file")
+        raise ScenarioError(
+            f"{path}: key '{key}': absolute path {value!r} is not allowed; give a path relative to the file"
+        )
     target = (path.parent / value).resolve()
     if not target.is_relative_to(root):
         raise ScenarioError(
@@ -403,7 +406,9 @@ def _load_raw(path: Path, root: Path, depth: int = 0) -> tuple[dict, Path]:
     if not isinstance(ext, str):
         raise ScenarioError(f"{path}: key 'extends': must be a string path, got {_short(ext)}; name the base scenario")
     if depth >= MAX_EXTENDS_DEPTH:
-        raise ScenarioError(f"{path}: key 'extends': more than {MAX_EXTENDS_DEPTH} levels of extends; flatten the chain")
+        raise ScenarioError(
+            f"{path}: key 'extends': more than {MAX_EXTENDS_DEPTH} levels of extends; flatten the chain"
+        )
     base_path = _resolve_inside(path, "extends", ext, root, ".toml")
     base, model_origin = _load_raw(base_path, root, depth + 1)
     return _merge(base, data), (path if "model" in data else model_origin)
@@ -423,7 +428,7 @@ def load_scenario(path: str | Path) -> Scenario:
 
 def _build(path: Path, raw: dict, root: Path, model_origin: Path) -> Scenario:
     top = _Reader(path, raw, "")
-    name = top.get("name", str, fix="give the scenario a short name, e.g. name = \"push_recovery\"")
+    name = top.get("name", str, fix='give the scenario a short name, e.g. name = "push_recovery"')
     description = top.get("description", str, "")
     model_value = top.get("model", str, fix='name the MJCF file, e.g. model = "../models/planar_body.xml"')
     model_path = _resolve_inside(model_origin, "model", model_value, root, ".xml")
@@ -441,7 +446,11 @@ def _build(path: Path, raw: dict, root: Path, model_origin: Path) -> Scenario:
     cal_names = cal.get("physics", list, list(PHYSICS_NAMES))
     for n in cal_names:
         if n not in [r.name for r in physics]:
-            raise cal.fail("physics", f"names {n!r}, which is not in [physics]", f"use names from: {', '.join(r.name for r in physics)}")
+            raise cal.fail(
+                "physics",
+                f"names {n!r}, which is not in [physics]",
+                f"use names from: {', '.join(r.name for r in physics)}",
+            )
     cal.finish()
     top.finish()
 
@@ -471,7 +480,9 @@ def _check_mjcf(model_path: Path, scenario_path: Path) -> None:
     try:
         text = head.decode("utf-8")
     except UnicodeDecodeError:
-        raise ScenarioError(f"{scenario_path}: key 'model': {model_path} is not UTF-8 text; name an MJCF (.xml) file") from None
+        raise ScenarioError(
+            f"{scenario_path}: key 'model': {model_path} is not UTF-8 text; name an MJCF (.xml) file"
+        ) from None
     if "<mujoco" not in text:
         raise ScenarioError(
             f"{scenario_path}: key 'model': {model_path} has no <mujoco> element near its start; name an MJCF file"
@@ -492,10 +503,15 @@ def _task(r: _Reader) -> Task:
         timestep=r.number("timestep", 0.002, positive=True),
     )
     if task.onset + task.duration >= task.horizon:
-        raise r.fail("horizon", f"{task.horizon} s ends before the disturbance does ({task.onset + task.duration} s)",
-                     "make the horizon longer than onset + duration")
+        raise r.fail(
+            "horizon",
+            f"{task.horizon} s ends before the disturbance does ({task.onset + task.duration} s)",
+            "make the horizon longer than onset + duration",
+        )
     if task.nstep > 20000:
-        raise r.fail("horizon", f"{task.nstep} steps is more than 20000", "shorten the horizon or lengthen the time step")
+        raise r.fail(
+            "horizon", f"{task.nstep} steps is more than 20000", "shorten the horizon or lengthen the time step"
+        )
     r.finish()
     return task
 
@@ -563,8 +579,11 @@ def _physics(r: _Reader) -> list[PhysicsRange]:
         sub.finish()
     missing = [n for n in PHYSICS_NAMES if n not in r.table]
     if missing:
-        raise r.fail(missing[0], "is missing", "give a [physics.NAME] table with low, high and nominal for each of "
-                     + ", ".join(PHYSICS_NAMES))
+        raise r.fail(
+            missing[0],
+            "is missing",
+            "give a [physics.NAME] table with low, high and nominal for each of " + ", ".join(PHYSICS_NAMES),
+        )
     r.finish()
     return out
 
@@ -592,8 +611,11 @@ def _objective(r: _Reader, feats: FeatureSettings) -> Objective:
     weights = {}
     for name in list(weights_r.table):
         if name not in feats.names or name == "fell":
-            raise weights_r.fail(name, "is not a computed feature (or is 'fell')",
-                                 f"weight features from [features].names: {', '.join(feats.names[1:])}")
+            raise weights_r.fail(
+                name,
+                "is not a computed feature (or is 'fell')",
+                f"weight features from [features].names: {', '.join(feats.names[1:])}",
+            )
         weights[name] = weights_r.number(name)
     if not weights:
         raise weights_r.fail("", "is empty", "weight at least one feature")
@@ -607,7 +629,11 @@ def _success(r: _Reader) -> dict[str, float]:
     out = {}
     for name in list(r.table):
         if name not in FEATURE_NAMES or name == "fell":
-            raise r.fail(name, "is not a feature", "bound features by name, e.g. recovery_time = 2.0 (success also needs no fall)")
+            raise r.fail(
+                name,
+                "is not a feature",
+                "bound features by name, e.g. recovery_time = 2.0 (success also needs no fall)",
+            )
         out[name] = r.number(name)
     r.finish()
     return out
@@ -650,8 +676,14 @@ def _hardware(r: _Reader) -> Hardware:
         if channel not in CHANNELS:
             raise plaus_r.fail(channel, "is not a trajectory channel", f"use channels from: {', '.join(CHANNELS)}")
         pair = plaus_r.get(channel, list)
-        if len(pair) != 2 or not all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in pair) or pair[0] >= pair[1]:
-            raise plaus_r.fail(channel, f"must be [low, high] in SI with low < high, got {_short(pair)}", "e.g. [-0.7, 0.7]")
+        if (
+            len(pair) != 2
+            or not all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in pair)
+            or pair[0] >= pair[1]
+        ):
+            raise plaus_r.fail(
+                channel, f"must be [low, high] in SI with low < high, got {_short(pair)}", "e.g. [-0.7, 0.7]"
+            )
         plausible[channel] = (float(pair[0]), float(pair[1]))
     plaus_r.finish()
     rate = r.number("sample_rate_hz", 500.0, positive=True)
@@ -668,8 +700,11 @@ def _hardware(r: _Reader) -> Hardware:
         plausible=plausible,
     )
     if hw.lowpass_hz is not None and hw.lowpass_hz >= hw.min_rate_hz / 2:
-        raise r.fail("lowpass_hz", f"{hw.lowpass_hz} Hz is not below the Nyquist rate of min_rate_hz ({hw.min_rate_hz / 2} Hz)",
-                     "lower the cut-off or raise min_rate_hz")
+        raise r.fail(
+            "lowpass_hz",
+            f"{hw.lowpass_hz} Hz is not below the Nyquist rate of min_rate_hz ({hw.min_rate_hz / 2} Hz)",
+            "lower the cut-off or raise min_rate_hz",
+        )
     r.finish()
     return hw
 

@@ -1,0 +1,178 @@
+"""Read-side SQL of the store: record builders, the overview (:func:`info`) and the health check
+(:func:`check`). Everything here reads; writes live in :mod:`gapgauge.store.db`."""
+
+from __future__ import annotations
+
+import json
+import math
+import sqlite3
+from collections.abc import Iterable, Sequence
+from pathlib import Path
+from typing import Any
+
+from ..records import STATUSES, TrialRecord
+from ..scenario import FEATURE_NAMES
+from . import schema
+
+RUNS = (
+    "SELECT r.id, r.kind, r.scenario_hash, r.seed, r.design, r.planned, r.nominal, r.config_json, r.status,"
+    " COUNT(ro.idx), r.created_at FROM runs r LEFT JOIN rollouts ro ON ro.run_id = r.id"
+)
+
+ROLLOUT_COLUMNS = "ro.run_id, ro.idx, ro.params_json, ro.physics_json, ro.status, ro.reason, ro.objective, ro.features_json"
+
+MATCHED_ROLLOUTS = (
+    f"SELECT {ROLLOUT_COLUMNS} FROM matches m JOIN rollouts ro ON ro.run_id = m.run_id AND ro.idx = m.idx"
+    " WHERE m.trial_id = ? ORDER BY m.run_id, m.idx"
+)
+
+TRIALS = (
+    "SELECT id, scenario_hash, source_path, sha256, params_json, robot_id, recorded_at, outcome, notes,"
+    " synthetic, features_json, objective, ingested_at, tool_version, {series}, extra_json FROM trials"
+)
+
+
+def where(*pairs: tuple[str, Any]) -> tuple[str, list]:
+    """`` WHERE a = ? AND ...`` over the pairs whose value is not None."""
+    used = [(col, val) for col, val in pairs if val is not None]
+    if not used:
+        return "", []
+    return " WHERE " + " AND ".join(f"{col} = ?" for col, _ in used), [val for _, val in used]
+
+
+def run_record(row: tuple):
+    from .db import RunRecord
+
+    rid, kind, scenario_hash, seed, design, planned, nominal, config, status, done, created = row
+    return RunRecord(int(rid), kind, scenario_hash, int(seed), design, int(planned), bool(nominal),
+                     json.loads(config), status, int(done), created)
+
+
+def scenario_columns(raw_json: str) -> tuple[int, tuple[str, ...], list[str]]:
+    """``(dim, physics names, feature names)`` of a stored scenario, in scenario order."""
+    raw = json.loads(raw_json)
+    dim = len(raw.get("parameters", []))
+    physics = tuple(raw.get("physics", {}))
+    features = list((raw.get("features") or {}).get("names", FEATURE_NAMES))
+    if "fell" not in features:
+        features = ["fell", *features]
+    return dim, physics, features
+
+
+def rollout_select(
+    scenario_hash: str, kinds: Sequence[str], run_ids: Iterable[int] | None, status: str | Sequence[str] | None
+) -> tuple[str, list]:
+    """SQL and arguments selecting a scenario's rollouts, ordered by run and index."""
+    kinds = [kinds] if isinstance(kinds, str) else list(kinds)
+    sql = (f"SELECT {ROLLOUT_COLUMNS} FROM rollouts ro JOIN runs r ON r.id = ro.run_id"
+           f" WHERE r.scenario_hash = ? AND r.kind IN ({','.join('?' * len(kinds))})")
+    args: list = [scenario_hash, *kinds]
+    if run_ids is not None:
+        ids = [int(i) for i in run_ids]
+        sql += f" AND ro.run_id IN ({','.join('?' * len(ids))})"
+        args += ids
+    if status is not None:
+        statuses = [status] if isinstance(status, str) else list(status)
+        sql += f" AND ro.status IN ({','.join('?' * len(statuses))})"
+        args += statuses
+    return sql + " ORDER BY ro.run_id, ro.idx", args
+
+
+def trial_record(row: tuple) -> TrialRecord:
+    from .codec import npz_to_trajectory
+
+    (tid, scenario_hash, source, sha, params, robot, recorded, outcome, notes, synthetic, features, objective,
+     ingested, tool_version, series, extra) = row
+    return TrialRecord(
+        scenario_hash=scenario_hash, source_path=source, sha256=sha, params=json.loads(params), robot_id=robot,
+        recorded_at=recorded, outcome=outcome, notes=notes, synthetic=bool(synthetic),
+        features={k: (math.nan if v is None else v) for k, v in json.loads(features).items()},
+        objective=math.nan if objective is None else float(objective), ingested_at=ingested,
+        tool_version=tool_version, series=None if series is None else npz_to_trajectory(series),
+        extra=json.loads(extra), id=int(tid),
+    )
+
+
+def info(conn: sqlite3.Connection, path: Path) -> dict:
+    """The overview behind ``gapgauge info`` (see :meth:`gapgauge.store.db.Store.info`)."""
+    names = dict(conn.execute("SELECT hash, name FROM scenarios").fetchall())
+    counts = dict(conn.execute("SELECT status, COUNT(*) FROM rollouts GROUP BY status").fetchall())
+    rollouts = {"total": sum(counts.values()), **{s: int(counts.get(s, 0)) for s in STATUSES}}
+    trial_total, synthetic = conn.execute("SELECT COUNT(*), COALESCE(SUM(synthetic), 0) FROM trials").fetchone()
+    runs = [
+        {"id": r[0], "kind": r[1], "scenario": names.get(r[2], r[2]), "scenario_hash": r[2], "seed": r[3],
+         "design": r[4], "planned": r[5], "nominal": bool(r[6]), "status": r[8], "done": r[9], "created_at": r[10]}
+        for r in conn.execute(RUNS + " GROUP BY r.id ORDER BY r.id").fetchall()
+    ]
+    scenarios = [
+        {"hash": h, "name": n, "path": p, "created_at": c,
+         "trials": conn.execute("SELECT COUNT(*) FROM trials WHERE scenario_hash = ?", (h,)).fetchone()[0]}
+        for h, n, p, c in conn.execute("SELECT hash, name, path, created_at FROM scenarios ORDER BY created_at")
+    ]
+    models = [
+        {"id": i, "kind": k, "scenario": names.get(h, h), "scenario_hash": h, "created_at": c}
+        for i, k, h, c in conn.execute("SELECT id, kind, scenario_hash, created_at FROM models ORDER BY id")
+    ]
+    return {
+        "store": str(path),
+        "schema_version": schema.SCHEMA_VERSION,
+        "scenarios": scenarios,
+        "runs": runs,
+        "rollouts": rollouts,
+        "trials": {"total": int(trial_total), "synthetic": int(synthetic)},
+        "matches": conn.execute("SELECT COUNT(*) FROM matches").fetchone()[0],
+        "models": models,
+    }
+
+
+def check(conn: sqlite3.Connection, path: Path) -> list[str]:
+    """Problems in the store, each one line saying what to do; empty when healthy.
+
+    SQLite's own ``PRAGMA integrity_check`` and ``foreign_key_check`` first, then ours: every run
+    complete or resumable, no duplicate rollouts, every trial's matched rollouts present, features
+    and objective finite wherever the status is ok.
+    """
+    restore = f"restore {path} from a backup (or copy out what `sqlite3 {path} .recover` saves)"
+    problems = [f"SQLite integrity check: {row[0]}; {restore}"
+                for row in conn.execute("PRAGMA integrity_check").fetchall() if row[0] != "ok"]
+    if problems:
+        return problems  # our own checks read the same damaged pages
+    for table, rowid, parent, _ in conn.execute("PRAGMA foreign_key_check").fetchall():
+        problems.append(f"table {table} row {rowid} points at a missing row of {parent}; {restore}")
+    for rid, done, planned, status, bad in conn.execute(
+        "SELECT r.id, COUNT(ro.idx), r.planned, r.status, SUM(ro.idx < 0 OR ro.idx >= r.planned)"
+        " FROM runs r LEFT JOIN rollouts ro ON ro.run_id = r.id GROUP BY r.id"
+    ).fetchall():
+        if bad:
+            problems.append(f"run {rid} holds {bad} rollout(s) with an index outside 0..{planned - 1}; {restore}")
+        elif status == "done" and done != planned:
+            problems.append(f"run {rid} is marked done but holds {done} of {planned} rollouts; run the command that"
+                            " made it (`gapgauge sweep` for a sweep) again to fill in the missing rows")
+    for rid, idx, n in conn.execute(
+        "SELECT run_id, idx, COUNT(*) FROM rollouts GROUP BY run_id, idx HAVING COUNT(*) > 1 LIMIT 20"
+    ).fetchall():
+        problems.append(f"run {rid} index {idx} is stored {n} times; {restore}")
+    for tid, missing in conn.execute(
+        "SELECT m.trial_id, COUNT(*) FROM matches m LEFT JOIN rollouts ro ON ro.run_id = m.run_id AND ro.idx = m.idx"
+        " WHERE ro.idx IS NULL GROUP BY m.trial_id"
+    ).fetchall():
+        problems.append(f"trial {tid} lacks {missing} matched simulation(s); run `gapgauge ingest` on its log again")
+    for (tid,) in conn.execute(
+        "SELECT t.id FROM trials t WHERE NOT EXISTS (SELECT 1 FROM matches m WHERE m.trial_id = t.id)"
+    ).fetchall():
+        problems.append(f"trial {tid} has no matched simulations; run `gapgauge ingest` on its log again")
+    problems += _nonfinite_ok_rows(conn, restore)
+    return problems
+
+
+def _nonfinite_ok_rows(conn: sqlite3.Connection, restore: str) -> list[str]:
+    bad: dict[int, int] = {}
+    cursor = conn.execute("SELECT run_id, objective, features_json FROM rollouts WHERE status = 'ok'")
+    while rows := cursor.fetchmany(20_000):
+        feats = json.loads("[" + ",".join(r[2] for r in rows) + "]")
+        for (rid, objective, _), row in zip(rows, feats):
+            finite = objective is not None and math.isfinite(objective)
+            if not finite or any(v is None or not math.isfinite(v) for v in row.values()):
+                bad[rid] = bad.get(rid, 0) + 1
+    return [f"run {rid} has {n} rollout(s) with status ok but a missing or non-finite feature or objective; {restore}"
+            for rid, n in sorted(bad.items())]
