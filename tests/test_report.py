@@ -251,3 +251,28 @@ def test_main_effects_match_the_analytic_first_order_sobol_indices():
     assert effects == pytest.approx([0.2 * 0.99, 0.8 * 0.99, 0.0], abs=0.01)
     # a U-shaped effect that a rank correlation would miss is still ranked first
     assert _ranked_parameters(x, (x[:, 2] - 0.5) ** 2 + 0.1 * x[:, 0], 1) == [2]
+
+
+def test_a_store_that_never_saw_the_scenario_gets_a_report_that_asks_for_the_sweep(scenario, tmp_path):
+    from gapgauge.store import Store
+
+    out = write_report(scenario, Store(tmp_path / "new.sqlite"), tmp_path / "fresh.html")
+    assert out.decision.level == "pending" and out.decision.command.startswith("gapgauge sweep ")
+
+
+def test_report_command_writes_the_report_and_refuses_a_missing_store(scenario, tmp_path):
+    from click.testing import CliRunner
+
+    from gapgauge.cli import main
+
+    store_path = tmp_path / "lab.sqlite"
+    build_store(scenario, store_path, kinds=("shift",)).close()
+    out = tmp_path / "out" / "r.html"
+    scenario_arg = str(REPO / "scenarios" / "push_recovery.toml")
+    ran = CliRunner().invoke(main, ["report", scenario_arg, "--store", str(store_path), "--out", str(out)])
+    assert ran.exit_code == 0, ran.output
+    assert out.is_file() and out.with_suffix(".json").is_file()
+    assert "gapgauge prior" in ran.output  # the empty sections and what fills them
+    missing = CliRunner().invoke(main, ["report", scenario_arg, "--store", str(tmp_path / "none.sqlite")])
+    assert missing.exit_code == 2
+    assert "store not found" in missing.output

@@ -1,4 +1,4 @@
-"""A small store for the report tests: a synthetic sweep, five trials and every stored result.
+"""A small real store for the report tests: a synthetic sweep, five trials and every stored result.
 
 The rollouts are a made-up landscape (no physics: the report only reads them), so the store builds in
 well under a second. Results are stored in the JSON shapes the analysis issues specify (shift,
@@ -8,12 +8,12 @@ prior, proposals, budget, calibration), with the keys the report reads and no mo
 from __future__ import annotations
 
 from pathlib import Path
-from typing import Any
 
 import numpy as np
 
 from gapgauge.records import RolloutBatch, TrialRecord
 from gapgauge.scenario import Scenario
+from gapgauge.store import Store
 
 REPO = Path(__file__).resolve().parents[1]
 HOSTILE_ROBOT = "<script>alert(1)</script>"
@@ -155,58 +155,6 @@ def results(
     }
 
 
-class MemoryStore:
-    """The store's read surface (``info``, ``runs``, ``rollouts``, ``trials``, ``load_model``) in memory."""
-
-    def __init__(self, path: Path) -> None:
-        self.path = str(path)
-        self._runs: list[dict[str, Any]] = []
-        self._rollouts: dict[str, list[RolloutBatch]] = {}
-        self._trials: dict[str, list[TrialRecord]] = {}
-        self._models: dict[tuple[str, str], dict] = {}
-
-    def add_sweep(self, scenario_hash: str, batch: RolloutBatch, seed: int) -> None:
-        run_id = len(self._runs) + 1
-        self._runs.append(
-            {
-                "id": run_id,
-                "kind": "sweep",
-                "scenario_hash": scenario_hash,
-                "seed": seed,
-                "design": "sobol",
-                "planned": len(batch),
-                "done": len(batch),
-                "status": "done",
-            }
-        )
-        batch.run_ids = np.full(len(batch), run_id)
-        self._rollouts.setdefault(scenario_hash, []).append(batch)
-
-    def add_trial(self, record: TrialRecord) -> None:
-        record.id = sum(len(v) for v in self._trials.values()) + 1
-        self._trials.setdefault(record.scenario_hash, []).append(record)
-
-    def save_model(self, kind: str, scenario_hash: str, params: dict) -> None:
-        self._models[(kind, scenario_hash)] = params
-
-    def info(self) -> dict[str, Any]:
-        return {"trials": {"total": sum(len(v) for v in self._trials.values())}, "runs": self._runs}
-
-    def runs(self) -> list[dict[str, Any]]:
-        return list(self._runs)
-
-    def rollouts(self, scenario_hash: str) -> RolloutBatch | None:
-        batches = self._rollouts.get(scenario_hash)
-        return RolloutBatch.concat(batches) if batches else None
-
-    def trials(self, scenario_hash: str) -> list[TrialRecord]:
-        return list(self._trials.get(scenario_hash, []))
-
-    def load_model(self, kind: str, scenario_hash: str) -> tuple[dict, dict] | None:
-        params = self._models.get((kind, scenario_hash))
-        return None if params is None else (params, {})
-
-
 def build_store(
     scenario: Scenario,
     path: Path,
@@ -216,11 +164,16 @@ def build_store(
     trials: int = 5,
     kinds: tuple[str, ...] = ("shift", "prior", "proposals", "budget", "calibration"),
     verdicts: tuple[str, ...] | None = None,
-) -> Any:
-    """A store holding a sweep, ``trials`` trials and the results named in ``kinds``."""
-    store = MemoryStore(path)
+) -> Store:
+    """A real store at ``path`` holding a sweep, ``trials`` trials and the results named in ``kinds``,
+    written through the Store's own methods."""
+    store = Store(path)
+    store.add_scenario(scenario)
     if sweep:
-        store.add_sweep(scenario.content_hash, sweep_batch(scenario), seed=7)
+        batch = sweep_batch(scenario)
+        run_id = store.start_run("sweep", scenario, seed=7, design="sobol", planned=len(batch), nominal=False)
+        store.write_rollouts(run_id, batch)
+        store.finish_run(run_id)
     records = trial_records(scenario, trials, hostile)
     for record in records:
         store.add_trial(record)

@@ -53,6 +53,106 @@ def main() -> None:
 # ---- sweep and info (sim/, store/) ---------------------------------------------------------
 
 
+@main.command("sweep")
+@click.argument("scenario", type=click.Path(dir_okay=False))
+@click.option("--rollouts", default=2000, show_default=True, type=click.IntRange(1),
+              help="Planned number of rollouts (the design size).")
+@click.option("--design", default="sobol", show_default=True, type=click.Choice(["sobol", "lhs", "random"]),
+              help="Space-filling design over the parameter bounds.")
+@click.option("--seed", default=0, show_default=True, type=click.IntRange(0, 2**63 - 1),
+              help="Seed of the design and of every physics draw.")
+@store_option
+@click.option("--workers", default=None, type=click.IntRange(1),
+              help="Simulation threads (local; default all cores) or MuJoCo threads per Dask task (default 1).")
+@click.option("--dask", "dask_address", default=None, metavar="ADDRESS",
+              help="Run the chunks on this Dask scheduler (e.g. tcp://host:8786); this process writes the store.")
+@click.option("--nominal", is_flag=True, help="Nominal physics for every rollout (no randomisation).")
+@click.option("--chunk-size", default=None, type=click.IntRange(1),
+              help="Rollouts per chunk, each stored in one transaction (default 256).")
+def sweep_command(scenario: str, rollouts: int, design: str, seed: int, store_path: str, workers: int | None,
+                  dask_address: str | None, nominal: bool, chunk_size: int | None) -> None:
+    """Simulate the scenario over its parameter space; resumable (run the same command again)."""
+    from rich.markup import escape
+    from rich.table import Table
+
+    from .sim.sweep import sweep
+
+    try:
+        s = sweep(scenario, rollouts, design=design, seed=seed, store=store_path, workers=workers,
+                  dask=dask_address, nominal=nominal, chunk_size=chunk_size, progress=True)
+    except KeyboardInterrupt:
+        err_console.print("interrupted: every finished chunk is stored; run the same command again to resume")
+        sys.exit(130)
+    if s.nothing_to_do:
+        console.print(f"nothing left to do: run {s.run_id} already holds all {s.planned} rollouts "
+                      f"in {escape(s.store)}")
+    table = Table(title=f"sweep {escape(s.scenario)} (run {s.run_id}, {escape(s.store)})", title_justify="left")
+    table.add_column("")
+    table.add_column("value", justify="right")
+    physics = "nominal" if s.nominal else "randomised"
+    table.add_row("rollouts", f"{s.done:,} of {s.planned:,} ({s.ran_now:,} now)")
+    table.add_row("design / seed / physics", f"{s.design} / {s.seed} / {physics}")
+    table.add_row("stood (ok)", f"{s.ok:,}")
+    table.add_row("fell", f"{s.fell:,}")
+    table.add_row("diverged", f"{s.diverged:,}")
+    table.add_row("best objective", "-" if s.best_objective is None else f"{s.best_objective:.4g}")
+    if s.ran_now:
+        table.add_row("wall time", f"{s.wall_seconds:.1f} s")
+        table.add_row("rate", f"{s.rollouts_per_second:,.1f} rollouts/s")
+    console.print(table)
+    if s.best_params:
+        best = Table(title="best parameters (lowest objective, did not fall)", title_justify="left")
+        for column in ("parameter", "value", "unit"):
+            best.add_column(column, justify="right" if column == "value" else "left")
+        for name, value in s.best_params.items():
+            best.add_row(escape(name), f"{value:.4g}", escape(s.units.get(name, "")))
+        console.print(best)
+
+
+@main.command("info")
+@store_option
+@json_option
+def info_command(store_path: str, json_path: str | None) -> None:
+    """What the store holds: scenarios, runs with progress, rollouts by status, trials, models."""
+    from rich.markup import escape
+    from rich.table import Table
+
+    from .store import Store
+
+    with Store(store_path, create=False) as store:
+        info = store.info(json_path=json_path)
+    r = info["rollouts"]
+    console.print(f"store {escape(info['store'])} (schema {info['schema_version']}): {r['total']:,} rollouts "
+                  f"({r['ok']:,} ok, {r['fell']:,} fell, {r['diverged']:,} diverged), "
+                  f"{info['trials']['total']} hardware trial(s) ({info['trials']['synthetic']} synthetic), "
+                  f"{info['matches']} match(es), {len(info['models'])} fitted model(s)")
+    if info["scenarios"]:
+        table = Table(title="scenarios", title_justify="left")
+        for column in ("name", "hash", "trials", "path"):
+            table.add_column(column)
+        for sc in info["scenarios"]:
+            table.add_row(escape(sc["name"]), sc["hash"], str(sc["trials"]), escape(sc["path"]))
+        console.print(table)
+    if info["runs"]:
+        table = Table(title="runs", title_justify="left")
+        for column in ("id", "kind", "scenario", "design", "seed", "physics", "done / planned", "status"):
+            table.add_column(column, justify="right" if column in ("id", "seed") else "left")
+        for run in info["runs"]:
+            table.add_row(str(run["id"]), run["kind"], escape(run["scenario"]), escape(run["design"]), str(run["seed"]),
+                          "nominal" if run["nominal"] else "randomised", f"{run['done']:,} / {run['planned']:,}",
+                          run["status"] if run["status"] == "done" else "[yellow]resumable[/]")
+        console.print(table)
+    if info["models"]:
+        table = Table(title="fitted models", title_justify="left")
+        for column in ("id", "kind", "scenario", "created"):
+            table.add_column(column)
+        for m in info["models"]:
+            table.add_row(str(m["id"]), escape(m["kind"]), escape(m["scenario"]), m["created_at"])
+        console.print(table)
+    if json_path:
+        console.print(f"JSON: {escape(json_path)}")
+
+
 # ---- ingest and standin (store/logs, sim/standin) ------------------------------------------
 
 
@@ -225,6 +325,66 @@ def shift_command(scenario: str, store_path: str, json_path: str | None, plots_d
 # ---- budget and calibrate (compare/budget, compare/calibration) ----------------------------
 
 
+@main.command("calibrate")
+@click.argument("scenario", type=click.Path(dir_okay=False))
+@store_option
+@click.option("--physics", "physics", default=None,
+              help="Comma-separated physical quantities to fit (default: the scenario's [calibration] physics).")
+@click.option("--overlay", "overlay_path", default=None, type=click.Path(dir_okay=False),
+              help="Where to write the calibrated scenario overlay (default: <scenario>.calibrated.toml beside it).")
+@json_option
+@click.option("--seed", default=0, show_default=True, type=click.IntRange(0),
+              help="Seed of the spread draws and the optimiser.")
+def calibrate_command(scenario: str, store_path: str, physics: str | None, overlay_path: str | None,
+                      json_path: str | None, seed: int) -> None:
+    """Fit the simulator's physics to the hardware trials; write a calibrated scenario overlay."""
+    from rich.markup import escape
+    from rich.table import Table
+
+    from .scenario import load_scenario
+    from .store import Store
+    from .workflow import calibrate_from_store
+
+    sc = load_scenario(scenario)
+    names = None if physics is None else [n.strip() for n in physics.split(",") if n.strip()]
+    store = Store(store_path, create=False)
+    try:
+        result = calibrate_from_store(sc, store, physics_names=names, overlay_path=overlay_path, seed=seed,
+                                      json_path=json_path, progress=True)
+    finally:
+        store.close()
+    table = Table(title=f"calibrate: {escape(sc.name)}, {result.n_trials} trial(s)", title_justify="left")
+    for column in ("physics", "estimate", "95% interval", "was", "identifiable", "why"):
+        table.add_column(column, overflow="fold")
+    for p in result.parameters:
+        table.add_row(
+            escape(p.name), f"{p.estimate:.4g} {escape(p.unit)}", f"[{p.interval[0]:.4g}, {p.interval[1]:.4g}]",
+            f"{p.base_nominal:.4g}", "[green]yes[/]" if p.identifiable else "[yellow]no[/]", escape(p.reason),
+        )
+    console.print(table)
+    shift = Table(title="feature shift (standardised residual rms; SHIFT verdict)", title_justify="left")
+    for column in ("feature", "before (nominal physics)", "after (calibrated)"):
+        shift.add_column(column, overflow="fold")
+    for j, name in enumerate(result.features):
+        shift.add_row(
+            escape(name),
+            f"{result.shift_before.rms[j]:.2f}  {result.shift_before.verdicts[j]}",
+            f"{result.shift_after.rms[j]:.2f}  {result.shift_after.verdicts[j]}",
+        )
+    shift.add_row("all (mean square)", f"{result.shift_before.total:.3g}", f"{result.shift_after.total:.3g}")
+    console.print(shift)
+    for name, why in result.excluded_features.items():
+        console.print(f"not matched: {escape(name)} ({escape(why)})")
+    console.print(
+        f"discrepancy {result.discrepancy}, optimiser {escape(result.optimiser)}: {result.evaluations} "
+        f"evaluations, {result.rollouts} rollouts, seed {result.seed}"
+    )
+    console.print(f"overlay: {escape(str(result.overlay_path))}")
+    if json_path:
+        console.print(f"JSON: {escape(json_path)}")
+    console.print(f"next: gapgauge sweep {escape(str(result.overlay_path))} --rollouts 200000")
+
+
 # ---- report and demo (report/, demo) -------------------------------------------------------
 
 
@@ -281,6 +441,35 @@ def demo_command(out_dir: str, quick: bool, seed: int) -> None:
 
 
 # ---- store maintenance ---------------------------------------------------------------------
+
+
+@main.group("store")
+def store_group() -> None:
+    """Store maintenance."""
+
+
+@store_group.command("check")
+@store_option
+def store_check_command(store_path: str) -> None:
+    """Verify the store: SQLite's integrity check plus gapgauge's own. Exit 0 healthy, 1 otherwise."""
+    from rich.markup import escape
+
+    from .store import Store
+
+    with Store(store_path, create=False) as store:
+        problems = store.check()
+        resumable = [r for r in store.runs() if r.status != "done"]
+    for run in resumable:
+        console.print(f"run {run.id} ({run.kind}) holds {run.done:,} of {run.planned:,} rollouts: resumable "
+                      "(run the same command again to finish it)")
+    if not problems:
+        console.print(f"[green]healthy[/]: {escape(store_path)} passed SQLite's integrity check and gapgauge's checks")
+        return
+    for problem in problems:
+        console.print(f"[red]problem[/]: {escape(problem)}", soft_wrap=True)
+    console.print(f"{len(problems)} problem(s) in {escape(store_path)}; "
+                  "make a copy of the file before repairing anything")
+    sys.exit(1)
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -14,6 +14,7 @@ from __future__ import annotations
 
 import dataclasses
 import importlib
+import json
 import shutil
 import time
 from collections.abc import Callable
@@ -100,10 +101,14 @@ def copy_bundle(out_dir: Path) -> dict[str, Path]:
 
 
 def as_json(result: Any) -> dict[str, Any]:
-    """The JSON form of an analysis result (``to_json``, ``as_dict``, a dataclass or a dict)."""
-    for method in ("to_json", "as_dict", "to_dict"):
+    """The JSON form of an analysis result (``to_json``/``as_dict``/``to_dict``/``summary``, a dict)."""
+    for method in ("to_json", "as_dict", "to_dict", "summary"):
         if hasattr(result, method):
-            return getattr(result, method)()
+            value = getattr(result, method)()
+            if isinstance(value, str):
+                value = json.loads(value)
+            if isinstance(value, dict):
+                return value
     if dataclasses.is_dataclass(result) and not isinstance(result, type):
         return dataclasses.asdict(result)
     if isinstance(result, dict):
@@ -226,7 +231,7 @@ def run_demo(
             step.figures["best objective"] = float(
                 np.nanmin(np.where(status == "ok", batch.objective, np.nan))
             )
-        for key in ("wall_seconds", "rollouts_per_s"):
+        for key in ("wall_seconds", "rollouts_per_second"):
             if key in info:
                 step.figures[key] = info[key]
 
@@ -280,9 +285,8 @@ def run_demo(
 
     def prior_step(step: DemoStep) -> None:
         fit_prior = _api("fit_prior")
-        prior = fit_prior(scenario, store, seed=seed)
+        prior = fit_prior(scenario, store, seed=seed, progress=progress)  # stores itself
         result = as_json(prior)
-        _save(store, "prior", scenario, result)
         step.figures = {
             "rho": result.get("rho"),
             "rho interval": result.get("rho_interval"),

@@ -459,7 +459,7 @@ def calibrate(
     simulator: Simulator,
     *,
     physics_names: Sequence[str] | None = None,
-    discrepancy: str = "standardised",
+    discrepancy: str = "multiresponse",
     optimiser: str = "differential_evolution",
     search_bounds: Mapping[str, tuple[float, float]] | None = None,
     widen: float = 0.5,

@@ -144,7 +144,8 @@ def _open_store(store: Any) -> Any:
 
 
 def _read(scenario: Scenario, store: Any) -> _Data:
-    batch = store.rollouts(scenario.content_hash, kinds=("sweep",))
+    no_sweep = hasattr(store, "runs") and not store.runs(scenario.content_hash, kind="sweep")
+    batch = None if no_sweep else store.rollouts(scenario.content_hash, kinds=("sweep",))
     if batch is None or len(batch) == 0:
         raise ModelError(
             f"the store has no sweep for scenario {scenario.name!r}; run `gapgauge sweep {scenario.path}` "

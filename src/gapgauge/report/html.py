@@ -19,7 +19,7 @@ import jinja2
 import numpy as np
 
 from .. import __version__
-from ..errors import StoreError
+from ..errors import GapgaugeError, StoreError
 from ..scenario import Scenario
 from . import plots
 from .summary import (
@@ -391,6 +391,26 @@ def _prior_points(
     return None
 
 
+def _prior_fitted_points(data: ReportData) -> tuple[np.ndarray, np.ndarray, np.ndarray, list[str]] | None:
+    """(hardware, predicted, sd, labels) at the trials that stood, from the stored prior, if it loads."""
+    if data.store is None or not data.trials:
+        return None
+    try:
+        from ..compare.prior import load_prior
+
+        fit = load_prior(data.scenario, data.store)
+        names = data.scenario.parameter_names
+        stood = [(i, t) for i, t in enumerate(data.trials, start=1) if not t.features.get("fell")]
+        if not stood:
+            return None
+        X = np.array([[t.params[n] for n in names] for _, t in stood], dtype=float)
+        mean, sd = fit.predict(X, return_std=True)
+    except (ImportError, GapgaugeError, KeyError):  # no prior module yet, or no stored prior
+        return None
+    hw = np.array([t.objective for _, t in stood], dtype=float)
+    return hw, np.asarray(mean, float).ravel(), np.asarray(sd, float).ravel(), [str(i) for i, _ in stood]
+
+
 def _prior_section(data: ReportData) -> dict[str, Any] | None:
     prior = data.results.get("prior")
     if prior is None:
@@ -400,7 +420,10 @@ def _prior_section(data: ReportData) -> dict[str, Any] | None:
         ("rho interval", fmt_interval(prior.get("rho_interval"))),
         ("fit time", f"{fmt(prior.get('fit_seconds'))} s"),
     ]
-    table += _scalars(prior, skip=("rho", "rho_interval", "fit_seconds", "loo", "trials"))
+    table += _scalars(
+        prior,
+        skip=("rho", "rho_interval", "fit_seconds", "loo", "trials", "model_state_keys", "scenario", "notes"),
+    )
     loo = prior.get("loo") or {}
     loo_rows = []
     for key, label in LOO_NAMES.items():
@@ -417,6 +440,19 @@ def _prior_section(data: ReportData) -> dict[str, Any] | None:
             )
     figures = []
     points = _prior_points(data, prior)
+    fitted = _prior_fitted_points(data) if points is None else None
+    if fitted is not None:
+        hw, mean, sd, labels = fitted
+        figures.append(
+            Figure(
+                "prior_vs_hardware",
+                plots.prior_vs_hardware(hw, mean, sd, labels),
+                "hardware objective against the fitted prior",
+                "Each hardware trial that stood (numbered as in the trials table) against the fitted prior's "
+                "prediction at its parameters, with a 95% interval. The trials are part of the fit, so this "
+                "shows the fit, not a test of it; the leave-one-out table above is the test.",
+            )
+        )
     if points is not None:
         hw, mean, sd = points
         figures.append(

@@ -21,6 +21,7 @@ from typing import Any
 import numpy as np
 
 from .. import __version__
+from ..errors import StoreError
 from ..records import RolloutBatch, TrialRecord
 from ..scenario import Scenario
 
@@ -82,6 +83,7 @@ class ReportData:
     trials: list[TrialRecord]
     results: dict[str, dict[str, Any] | None]
     arrays: dict[str, dict[str, np.ndarray]]
+    store: Any = field(default=None, repr=False)  # the store read, for models the report evaluates
     generated_at: str = field(
         default_factory=lambda: _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds")
     )
@@ -127,7 +129,10 @@ def collect(scenario: Scenario, store: Any) -> ReportData:
     runs_raw = store.runs() if hasattr(store, "runs") else []
     runs = [as_dict(r) for r in runs_raw]
     runs = [r for r in runs if r.get("scenario_hash") in (None, h)]
-    rollouts = store.rollouts(h)
+    try:
+        rollouts = store.rollouts(h)
+    except StoreError:  # the store has never seen this scenario: nothing swept yet
+        rollouts = None
     if rollouts is not None and len(rollouts) == 0:
         rollouts = None
     if rollouts is not None and rollouts.run_ids is not None and runs:
@@ -145,10 +150,14 @@ def collect(scenario: Scenario, store: Any) -> ReportData:
             results[kind] = None
             continue
         params, arr = loaded
+        if isinstance(params, dict) and "rho" not in params and isinstance(params.get("summary"), dict):
+            params = {**params["summary"], "model_state_keys": sorted(k for k in params if k != "summary")}
         results[kind] = params if isinstance(params, dict) else None
         arrays[kind] = dict(arr or {})
     path = getattr(store, "path", None) or info.get("path") or ""
-    return ReportData(scenario, str(path), info, runs, rollouts, trials, results, arrays)
+    data = ReportData(scenario, str(path), info, runs, rollouts, trials, results, arrays)
+    data.store = store
+    return data
 
 
 # ---- reading the results tolerantly ----------------------------------------------------------

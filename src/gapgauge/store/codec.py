@@ -60,7 +60,7 @@ def feature_rows(features: dict[str, np.ndarray], n: int) -> list[str]:
     out = []
     for i in range(n):
         row = {}
-        for name, column in zip(names, columns):
+        for name, column in zip(names, columns, strict=True):
             v = column[i]
             row[name] = v if math.isfinite(v) else None
         out.append(json.dumps(row, separators=(",", ":")))
@@ -106,7 +106,7 @@ def batch_from_rows(
     objective, features_json)``."""
     if not rows:
         return empty_batch(dim, physics_names, feature_names)
-    run_ids, idx, params, physics, status, reason, objective, features = zip(*rows)
+    run_ids, idx, params, physics, status, reason, objective, features = zip(*rows, strict=True)
     return RolloutBatch(
         indices=np.array(idx, dtype=np.int64),
         params=parse_matrix(params, dim),

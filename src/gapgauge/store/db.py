@@ -61,22 +61,27 @@ class RunRecord:
 class Store:
     """A gapgauge store (one SQLite file). Use as a context manager, or call :meth:`close`.
 
-    Opening creates the file if needed, migrates an older schema after writing a backup copy
-    ``<store>.v<old>.bak``, and refuses a newer schema or a file that is not a gapgauge store with a
-    :class:`StoreError`. One ``Store`` may be shared by threads; its calls are serialised.
+    Opening creates the file if needed (unless ``create=False``), migrates an older schema after
+    writing a backup copy ``<store>.v<old>.bak``, and refuses a newer schema or a file that is not a
+    gapgauge store with a :class:`StoreError`. One ``Store`` may be shared by threads; its calls are
+    serialised.
     """
 
-    def __init__(self, path: str | Path = "gapgauge.sqlite"):
+    def __init__(self, path: str | Path = "gapgauge.sqlite", *, create: bool = True):
         self.path = Path(path)
         self._lock = threading.RLock()
         self.backup_path: Path | None = None  # set when opening migrated an older schema
+        if not create and not self.path.exists():
+            raise StoreError(f"{self.path}: no store here; run `gapgauge sweep` first or give --store PATH")
         self._check_file()
         try:
             self._conn = sqlite3.connect(
                 str(self.path), timeout=BUSY_TIMEOUT_MS / 1000, isolation_level=None, check_same_thread=False
             )
         except sqlite3.Error as exc:
-            raise StoreError(f"{self.path}: cannot open the store ({exc}); check the path and its permissions") from None
+            raise StoreError(
+                f"{self.path}: cannot open the store ({exc}); check the path and its permissions"
+            ) from None
         try:
             self._retry(self._configure)
             self._retry(self._prepare_schema)
@@ -94,20 +99,25 @@ class Store:
         if self.path.is_dir():
             raise StoreError(f"{self.path}: is a folder; give a store file such as {self.path / 'gapgauge.sqlite'}")
         if not self.path.parent.exists():
-            raise StoreError(f"{self.path}: folder {self.path.parent} does not exist; create it or pick another --store")
+            raise StoreError(
+                f"{self.path}: folder {self.path.parent} does not exist; create it or pick another --store"
+            )
         if self.path.exists() and self.path.stat().st_size > 0:
             with open(self.path, "rb") as fh:
                 head = fh.read(len(SQLITE_HEADER))
             if head != SQLITE_HEADER:
                 raise StoreError(
-                    f"{self.path}: is not a SQLite database (no SQLite header); give a gapgauge store or a new file name"
+                    f"{self.path}: is not a SQLite database (no SQLite header); "
+                    "give a gapgauge store or a new file name"
                 )
 
     def _configure(self) -> None:
         self._conn.execute(f"PRAGMA busy_timeout = {BUSY_TIMEOUT_MS}")
         mode = self._conn.execute("PRAGMA journal_mode = WAL").fetchone()[0]
         if str(mode).lower() != "wal":
-            raise StoreError(f"{self.path}: SQLite could not switch to WAL mode (got {mode}); put the store on a local disk")
+            raise StoreError(
+                f"{self.path}: SQLite could not switch to WAL mode (got {mode}); put the store on a local disk"
+            )
         # With WAL, NORMAL keeps every committed transaction through a process crash (kill -9).
         self._conn.execute("PRAGMA synchronous = NORMAL")
         self._conn.execute("PRAGMA foreign_keys = ON")
@@ -278,6 +288,7 @@ class Store:
             [str(s) for s in batch.reason],
             [float(v) if np.isfinite(v) else None for v in np.asarray(batch.objective, dtype=float)],
             codec.feature_rows(batch.features, n),
+            strict=True,
         ))
 
         def body(c: sqlite3.Connection) -> int:
@@ -396,9 +407,16 @@ class Store:
         return codec.json.loads(params), ({} if blob is None else codec.npz_to_arrays(blob))
 
     # ---- overview and health ----------------------------------------------------------------
-    def info(self) -> dict:
-        """What the store holds: scenarios, runs with progress, rollouts by status, trials, models."""
-        return self._retry(lambda: queries.info(self._conn, self.path))
+    def info(self, json_path: str | Path | None = None) -> dict:
+        """What the store holds: scenarios, runs with progress, rollouts by status, trials, models.
+        With ``json_path``, also written there as JSON."""
+        summary = self._retry(lambda: queries.info(self._conn, self.path))
+        if json_path is not None:
+            try:
+                Path(json_path).write_text(codec.json.dumps(summary, indent=2) + "\n")
+            except OSError as exc:
+                raise StoreError(f"{json_path}: cannot write the JSON ({exc.strerror}); check the folder") from None
+        return summary
 
     def check(self) -> list[str]:
         """Problems found (empty when healthy): SQLite's integrity check, then ours. Each says what to do."""

@@ -19,7 +19,9 @@ RUNS = (
     " COUNT(ro.idx), r.created_at FROM runs r LEFT JOIN rollouts ro ON ro.run_id = r.id"
 )
 
-ROLLOUT_COLUMNS = "ro.run_id, ro.idx, ro.params_json, ro.physics_json, ro.status, ro.reason, ro.objective, ro.features_json"
+ROLLOUT_COLUMNS = (
+    "ro.run_id, ro.idx, ro.params_json, ro.physics_json, ro.status, ro.reason, ro.objective, ro.features_json"
+)
 
 MATCHED_ROLLOUTS = (
     f"SELECT {ROLLOUT_COLUMNS} FROM matches m JOIN rollouts ro ON ro.run_id = m.run_id AND ro.idx = m.idx"
@@ -170,7 +172,7 @@ def _nonfinite_ok_rows(conn: sqlite3.Connection, restore: str) -> list[str]:
     cursor = conn.execute("SELECT run_id, objective, features_json FROM rollouts WHERE status = 'ok'")
     while rows := cursor.fetchmany(20_000):
         feats = json.loads("[" + ",".join(r[2] for r in rows) + "]")
-        for (rid, objective, _), row in zip(rows, feats):
+        for (rid, objective, _), row in zip(rows, feats, strict=True):
             finite = objective is not None and math.isfinite(objective)
             if not finite or any(v is None or not math.isfinite(v) for v in row.values()):
                 bad[rid] = bad.get(rid, 0) + 1

@@ -1,0 +1,126 @@
+"""fit_prior() on a real store holding a synthetic sweep and synthetic trials of push_recovery.
+
+The synthetic truth is known: the simulated objective is a smooth bowl in the unit cube, the hardware
+objective is ``RHO * simulation + OFFSET`` (the Kennedy-O'Hagan model with a constant discrepancy),
+and the margin of stability is a plane.
+"""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from gapgauge.compare.prior import fit_prior, load_prior
+from gapgauge.errors import ModelError
+from gapgauge.records import RolloutBatch, TrialRecord
+from gapgauge.scenario import load_scenario
+from gapgauge.store import Store
+
+SCENARIO_PATH = Path(__file__).resolve().parents[1] / "scenarios" / "push_recovery.toml"
+RHO, OFFSET = 1.0, 0.3
+N_SIM = 400
+
+
+def sim_objective(U: np.ndarray) -> np.ndarray:
+    return 2.0 * (U[:, 0] - 0.6) ** 2 + 1.5 * (U[:, 1] - 0.4) ** 2 + 0.5 * U[:, 2] + 1.0
+
+
+def margin(U: np.ndarray) -> np.ndarray:
+    return 0.05 + 0.1 * (U[:, 0] - 0.3)  # m: negative (a fall) for U_0 below about -0.2, i.e. nowhere
+
+
+def make_store(path: Path, n_trials: int, seed: int = 0) -> tuple[object, Store]:
+    scenario = load_scenario(SCENARIO_PATH)
+    store = Store(path)
+    rng = np.random.default_rng(seed)
+    U = rng.uniform(size=(N_SIM, scenario.dim))
+    params = scenario.from_unit(U)
+    status = np.array(["ok"] * N_SIM, dtype=object)
+    status[:20] = "fell"
+    status[20:25] = "diverged"
+    objective = sim_objective(U) + 0.02 * rng.normal(size=N_SIM)
+    objective[:20] = scenario.objective.fall_value
+    objective[20:25] = np.nan
+    features = {"margin_of_stability": margin(U) + 0.005 * rng.normal(size=N_SIM),
+                "fell": (status == "fell").astype(float)}
+    features["margin_of_stability"][20:25] = np.nan
+    run = store.start_run("sweep", scenario, seed=seed, design="sobol", planned=N_SIM, nominal=False)
+    store.write_rollouts(run, RolloutBatch(
+        indices=np.arange(N_SIM), params=params, physics=np.ones((N_SIM, 6)),
+        physics_names=tuple(r.name for r in scenario.physics), status=status,
+        reason=np.array([""] * N_SIM, dtype=object), objective=objective, features=features))
+    safe = scenario.to_unit(scenario.bounds(safe=True).T).T
+    for i in range(n_trials):
+        u = rng.uniform(safe[:, 0], safe[:, 1])[None]
+        x = scenario.from_unit(u)[0]
+        store.add_trial(TrialRecord(
+            scenario_hash=scenario.content_hash, source_path=f"trial_{i}.csv", sha256=f"{seed}-{i}",
+            params=scenario.params_to_mapping(x), robot_id="test", recorded_at="2024-01-01T00:00:00Z",
+            outcome="stood", notes="", synthetic=True,
+            features={"margin_of_stability": float(margin(u)[0]), "fell": 0.0},
+            objective=float(RHO * sim_objective(u)[0] + OFFSET + 0.02 * rng.normal())))
+    return scenario, store
+
+
+@pytest.fixture(scope="module")
+def fitted(tmp_path_factory: pytest.TempPathFactory):
+    scenario, store = make_store(tmp_path_factory.mktemp("prior") / "store.sqlite", n_trials=6)
+    return scenario, store, fit_prior(scenario, store, seed=0, progress=False)
+
+
+def test_prior_without_a_sweep_says_which_command_fills_the_store(tmp_path: Path) -> None:
+    scenario = load_scenario(SCENARIO_PATH)
+    with pytest.raises(ModelError, match="gapgauge sweep"):
+        fit_prior(scenario, Store(tmp_path / "empty.sqlite"), progress=False)
+
+
+def test_prior_uses_standing_rollouts_for_the_objective_and_all_measured_ones_for_falls(fitted) -> None:
+    _, _, prior = fitted
+    assert prior.n_sim == N_SIM - 25  # 20 fell and 5 diverged left out of the objective model
+    assert prior.n_sim_fall_model == N_SIM - 5  # fallen rollouts kept, diverged ones not
+    assert prior.n_diverged == 5
+    assert any("diverged" in note for note in prior.notes)
+    assert prior.n_hardware == 6
+
+
+def test_prior_summary_is_json_with_the_documented_keys(fitted) -> None:
+    _, _, prior = fitted
+    summary = json.loads(json.dumps(prior.summary()))
+    for key in ("rho", "rho_interval", "fit_seconds", "discrepancy_scale", "loo"):
+        assert key in summary
+    for model in ("multi_fidelity", "hardware_only", "simulation_only"):
+        assert set(summary["loo"][model]) == {"rmse", "log_predictive_density"}
+
+
+def test_prior_finds_the_constructed_rho_within_its_interval(fitted) -> None:
+    # built with hardware = 1.0 * simulation + 0.3 (Kennedy-O'Hagan with a constant discrepancy)
+    _, _, prior = fitted
+    low, high = prior.rho_interval
+    assert low < RHO < high
+
+
+def test_prior_predicts_held_out_hardware_better_than_hardware_alone(fitted) -> None:
+    # leave-one-out over 6 trials in 13 dimensions: a GP on the trials alone cannot know the bowl;
+    # the simulation level does, and the prior adds the offset
+    _, _, prior = fitted
+    assert prior.loo["multi_fidelity"]["rmse"] < prior.loo["hardware_only"]["rmse"]
+    assert prior.loo["multi_fidelity"]["rmse"] < prior.loo["simulation_only"]["rmse"]
+
+
+def test_stored_prior_predicts_exactly_like_the_fitted_one(fitted) -> None:
+    scenario, store, prior = fitted
+    loaded = load_prior(scenario, store)
+    X = scenario.from_unit(np.random.default_rng(5).uniform(size=(20, scenario.dim)))
+    np.testing.assert_array_equal(loaded.predict(X)[0], prior.predict(X)[0])
+    np.testing.assert_array_equal(loaded.predict(X)[1], prior.predict(X)[1])
+    np.testing.assert_array_equal(loaded.fall_probability(X), prior.fall_probability(X))
+    assert loaded.rho == prior.rho
+
+
+def test_load_prior_before_any_fit_says_to_run_prior(tmp_path: Path) -> None:
+    scenario = load_scenario(SCENARIO_PATH)
+    with pytest.raises(ModelError, match="gapgauge prior"):
+        load_prior(scenario, Store(tmp_path / "empty.sqlite"))
