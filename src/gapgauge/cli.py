@@ -322,6 +322,101 @@ def shift_command(scenario: str, store_path: str, json_path: str | None, plots_d
 # ---- prior and propose (compare/prior, compare/propose) ------------------------------------
 
 
+@main.command("prior")
+@click.argument("scenario", type=click.Path(dir_okay=False))
+@store_option
+@json_option
+@click.option("--seed", default=0, show_default=True, type=click.IntRange(0),
+              help="Seed of the subsample, inducing points and optimiser restarts.")
+@click.option("--max-inducing", default=300, show_default=True, type=click.IntRange(10, 5000),
+              help="Inducing points of the simulation level (sparse GP above 2,000 rollouts).")
+def prior_command(scenario: str, store_path: str, json_path: str | None, seed: int, max_inducing: int) -> None:
+    """Fit and store the multi-fidelity prior (simulation corrected by hardware) and the fall model."""
+    import math
+
+    from rich.markup import escape
+    from rich.table import Table
+
+    from .compare.prior import fit_prior
+    from .scenario import load_scenario
+
+    sc = load_scenario(scenario)
+    fit = fit_prior(sc, store_path, seed=seed, max_inducing=max_inducing, progress=True)
+
+    def num(value: float | None, fmt: str = ".3g") -> str:
+        return format(value, fmt) if value is not None and math.isfinite(value) else "-"
+
+    low, high = fit.rho_interval
+    console.print(f"prior: {escape(sc.name)}: {fit.n_sim} simulated rollouts, {fit.n_hardware} hardware trial(s)")
+    console.print(f"rho = {num(fit.rho)}  95% interval [{num(low)}, {num(high)}]  (hardware = rho x simulation "
+                  "+ discrepancy)")
+    console.print(f"discrepancy scale {num(fit.discrepancy_scale)} (objective units); "
+                  f"offset {num(fit.objective_model.offset_, '+.3g')}; "
+                  f"hardware noise sd {num(fit.objective_model.hardware_noise_sd_)}")
+    table = Table(title=f"leave-one-out over {fit.n_hardware} hardware trial(s)", title_justify="left")
+    for column in ("model", "RMSE (objective units)", "mean log predictive density"):
+        table.add_column(column)
+    names = {"multi_fidelity": "multi-fidelity prior", "hardware_only": "hardware only",
+             "simulation_only": "simulation only"}
+    for key, label in names.items():
+        row = fit.loo[key]
+        table.add_row(label, num(row["rmse"]), num(row["log_predictive_density"], ".3f"))
+    console.print(table)
+    console.print(f"fit time {fit.fit_seconds:.1f} s; simulation level "
+                  f"{type(fit.objective_model.low_).__name__}; stored as model {fit.model_id}; seed {fit.seed}")
+    for note in fit.notes:
+        console.print(f"note: {escape(note)}")
+    if json_path:
+        fit.write_json(json_path)
+        console.print(f"JSON: {escape(json_path)}")
+
+
+@main.command("propose")
+@click.argument("scenario", type=click.Path(dir_okay=False))
+@store_option
+@click.option("--count", default=1, show_default=True, type=click.IntRange(1, 50),
+              help="Number of trials to propose (a batch by kriging believer).")
+@click.option("--max-fall-risk", default=0.05, show_default=True,
+              type=click.FloatRange(0.0, 1.0, min_open=True), help="Highest modelled fall probability allowed.")
+@click.option("--out", "out_path", default=None, type=click.Path(dir_okay=False),
+              help='Write {"proposals": [...]} JSON here (gapgauge standin --params reads it).')
+@click.option("--seed", default=0, show_default=True, type=click.IntRange(0),
+              help="Seed of the candidate sets (and of a refit, if the stored prior is out of date).")
+def propose_command(scenario: str, store_path: str, count: int, max_fall_risk: float, out_path: str | None,
+                    seed: int) -> None:
+    """Propose the next hardware trials: expected improvement x P(no fall), inside the safe bounds."""
+    from rich.markup import escape
+    from rich.table import Table
+
+    from .compare.propose import propose
+    from .scenario import load_scenario
+
+    sc = load_scenario(scenario)
+    result = propose(sc, store_path, count=count, max_fall_risk=max_fall_risk, seed=seed)
+    table = Table(title=f"proposals: {escape(sc.name)} (P(fall) <= {max_fall_risk:g})", title_justify="left")
+    table.add_column("parameter")
+    table.add_column("unit")
+    for i in range(len(result.proposals)):
+        table.add_column(f"#{i + 1}", justify="right")
+    for name in sc.parameter_names:
+        table.add_row(escape(name), escape(result.units[name]),
+                      *[f"{p['params'][name]:.4g}" for p in result.proposals])
+    table.add_row("predicted objective", "", *[f"{p['predicted_objective']:.4g}" for p in result.proposals])
+    table.add_row("predicted sd", "", *[f"{p['predicted_sd']:.3g}" for p in result.proposals])
+    table.add_row("P(fall)", "", *[f"{p['fall_risk']:.3f}" for p in result.proposals])
+    console.print(table)
+    for i, p in enumerate(result.proposals):
+        console.print(f"#{i + 1}: {escape(p['reason'])}")
+    console.print(f"batch: {escape(result.batch_method)}; incumbent {result.incumbent:.4g}; "
+                  f"{result.n_hardware} hardware trial(s), {result.n_sim} simulated rollouts; seed {result.seed}")
+    for note in result.notes:
+        console.print(f"note: {escape(note)}")
+    if out_path:
+        result.write_json(out_path)
+        console.print(f"JSON: {escape(out_path)}")
+    console.print(f"[bold yellow]{CAUTION}[/]")
+
+
 # ---- budget and calibrate (compare/budget, compare/calibration) ----------------------------
 
 

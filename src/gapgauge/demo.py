@@ -24,7 +24,7 @@ from typing import Any
 
 import numpy as np
 
-from .errors import ScenarioError
+from .errors import ModelError, ScenarioError
 from .scenario import Scenario, load_scenario
 
 SCENARIO_FILE = "push_recovery.toml"
@@ -237,7 +237,13 @@ def run_demo(
 
     def first_proposals_step(step: DemoStep) -> None:
         propose = _api("propose")
-        result = as_json(propose(scenario, store, count=FIRST_TRIALS, max_fall_risk=MAX_FALL_RISK, seed=seed))
+        try:
+            result = as_json(
+                propose(scenario, store, count=FIRST_TRIALS, max_fall_risk=MAX_FALL_RISK, seed=seed)
+            )
+        except ModelError as exc:  # a real answer: the model finds no set it trusts; hand-pick instead
+            step.figures = {"no proposal": str(exc), "instead": "a Sobol design inside the safe bounds"}
+            return
         state["first_params"] = [p["params"] for p in result["proposals"]]
         step.figures = {
             "proposed": len(state["first_params"]),
@@ -295,7 +301,13 @@ def run_demo(
 
     def proposals_step(step: DemoStep) -> None:
         propose = _api("propose")
-        result = as_json(propose(scenario, store, count=FIRST_TRIALS, max_fall_risk=MAX_FALL_RISK, seed=seed))
+        try:
+            result = as_json(
+                propose(scenario, store, count=FIRST_TRIALS, max_fall_risk=MAX_FALL_RISK, seed=seed)
+            )
+        except ModelError as exc:  # shown, not hidden: the report's proposals section will say what to run
+            step.figures = {"no proposal": str(exc)}
+            return
         _save(store, "proposals", scenario, result)
         risks = [float(p.get("fall_risk") or 0.0) for p in result["proposals"]]
         step.figures = {"proposed": len(risks), "max fall risk": max(risks) if risks else None}

@@ -23,8 +23,10 @@ import numpy as np
 from scipy.optimize import minimize
 from scipy.special import erfcx, ndtr
 from scipy.stats import qmc
+from threadpoolctl import threadpool_limits
 
 from ..errors import ModelError
+from .gp import FIT_BLAS_THREADS
 
 LOG_PHI_CONST = -0.5 * np.log(2.0 * np.pi)
 # a point over the fall-risk limit scores this much lower per unit of excess risk: far below any
@@ -112,6 +114,23 @@ def maximise_acquisition(
     Raises:
         ModelError: no candidate satisfies the fall-risk limit.
     """
+    # many small model calls: one BLAS thread (see gapgauge.compare.gp.FIT_BLAS_THREADS)
+    with threadpool_limits(limits=FIT_BLAS_THREADS, user_api="blas"):
+        return _maximise(predict, bounds, best, fall_probability, max_fall_risk, seed, n_candidates,
+                         n_starts, max_iter)
+
+
+def _maximise(
+    predict: Predict,
+    bounds: np.ndarray,
+    best: float | None,
+    fall_probability: FallProbability | None,
+    max_fall_risk: float,
+    seed: int | np.random.Generator,
+    n_candidates: int,
+    n_starts: int,
+    max_iter: int,
+) -> AcquisitionResult:
     bounds = np.asarray(bounds, dtype=float)
     dim = bounds.shape[0]
     low, high = bounds[:, 0], bounds[:, 1]

@@ -755,7 +755,7 @@ def _search_box(
     for name in names:
         if name not in known:
             raise ScenarioError(
-                f"{scenario.path}: physics {name!r} to calibrate is not in [physics]; "
+                f"{scenario.path}: physics {name!r} to calibrate is not one of the scenario's physics quantities; "
                 f"use names from: {', '.join(known)}"
             )
     for name in search_bounds or {}:

@@ -22,6 +22,7 @@ refitting (:func:`load_prior`).
 
 from __future__ import annotations
 
+import json
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -29,7 +30,7 @@ from typing import Any
 
 import numpy as np
 
-from ..errors import ModelError
+from ..errors import GapgaugeError, ModelError
 from ..scenario import Scenario
 from .fall import FallModel
 from .gp import ExactGP
@@ -118,6 +119,19 @@ class PriorFit:
         }
 
 
+    def write_json(self, path: str | Path) -> None:
+        """Write :meth:`summary` as JSON to ``path``."""
+        write_json(path, self.summary())
+
+
+def write_json(path: str | Path, data: dict[str, Any]) -> None:
+    """Write ``data`` as indented JSON; an unwritable path is a user error."""
+    try:
+        Path(path).write_text(json.dumps(_jsonable(data), indent=2) + "\n", encoding="utf-8")
+    except OSError as exc:
+        raise GapgaugeError(f"{path}: cannot write the JSON ({exc.strerror}); pick another path") from None
+
+
 # ---- data from the store ---------------------------------------------------------------------
 
 
@@ -139,7 +153,7 @@ def _open_store(store: Any) -> Any:
     if isinstance(store, (str, Path)):
         from ..store import Store
 
-        return Store(store)
+        return Store(store, create=False)
     return store
 
 

@@ -18,6 +18,7 @@ from __future__ import annotations
 
 import json
 from dataclasses import asdict, dataclass, field
+from pathlib import Path
 from typing import Any
 
 import numpy as np
@@ -25,7 +26,7 @@ import numpy as np
 from ..errors import ModelError
 from ..scenario import Scenario
 from .acquisition import maximise_acquisition
-from .prior import PriorFit, _open_store, fit_prior, load_prior
+from .prior import PriorFit, _open_store, fit_prior, load_prior, write_json
 
 BATCH_METHOD = "kriging believer (Ginsbourger, Le Riche and Carraro 2010)"
 
@@ -67,6 +68,10 @@ class Proposals:
 
     def to_json(self) -> str:
         return json.dumps(self.to_dict(), indent=2)
+
+    def write_json(self, path: str | Path) -> None:
+        """Write :meth:`to_dict` to ``path`` (``gapgauge standin --params`` reads it)."""
+        write_json(path, self.to_dict())
 
 
 def propose(

@@ -1,0 +1,141 @@
+"""Sweep throughput against bare ``mujoco.rollout``, and the sweep's peak memory.
+
+In one process:
+
+1. the sweep end to end (design, physics draws, model building, simulation, features, objective and
+   store writes) into a temporary store, timed by wall clock; peak resident memory read after it;
+2. bare ``mujoco.rollout`` on the same models (same parameters and physics draws), horizon, time
+   step, controls and thread count, in batches of the simulator's sub-batch size; only the rollout
+   calls are timed (models and controls are built outside the clock);
+3. reading the rollouts back from a store (``Store.rollouts``) at ``--read-rows`` rows.
+
+Prints both rates and their ratio; the last line is one JSON object with ``sweep_rollouts_per_s``,
+``bare_rollouts_per_s``, ``ratio`` and ``peak_memory_mb`` (plus context). Targets: ratio >= 0.8,
+peak memory < 1 GiB.
+
+    .venv/bin/python benchmarks/sweep_throughput.py               # 10^4 rollouts
+    .venv/bin/python benchmarks/sweep_throughput.py --quick       # 500 rollouts, a smoke run
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import platform
+import resource
+import tempfile
+import time
+from datetime import datetime, timezone
+from pathlib import Path
+
+import mujoco
+import mujoco.rollout
+import numpy as np
+
+from gapgauge import load_scenario
+from gapgauge.records import RolloutBatch
+from gapgauge.sim.controls import CONTROL_SPEC, STATE_SPEC, build_controls, control_size, initial_state
+from gapgauge.sim.design import make_design
+from gapgauge.sim.model import _load, build_models
+from gapgauge.sim.physics import draw_physics
+from gapgauge.sim.rollout import SUB_BATCH
+from gapgauge.sim.sweep import sweep
+from gapgauge.store import Store
+
+ROOT = Path(__file__).resolve().parents[1]
+
+
+def peak_rss_mb() -> float:
+    """Peak resident set size of this process so far, MB (Linux reports ru_maxrss in KiB)."""
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+
+
+def bare_rate(scenario, n: int, seed: int, nthread: int) -> float:
+    """Rollouts per second of bare ``mujoco.rollout`` over the sweep's own models and inputs."""
+    base, _ = _load(scenario.model_path)
+    nstep = scenario.task.nstep
+    params = make_design(scenario, n, "sobol", seed)
+    size = min(SUB_BATCH, n)
+    control = np.empty((size, nstep, control_size(base)))
+    state = np.empty((size, nstep, mujoco.mj_stateSize(base, STATE_SPEC)))
+    sensordata = np.empty((size, nstep, base.nsensordata))
+    datas = [mujoco.MjData(base) for _ in range(nthread)]
+    pool: list[mujoco.MjModel] = []
+    clock = 0.0
+    with mujoco.rollout.Rollout(nthread=nthread if nthread > 1 else 0) as runner:
+        for first in range(0, n, size):
+            rows = np.arange(first, min(first + size, n))
+            physics = draw_physics(scenario, seed, rows)
+            pool = build_models(scenario, params[rows], physics, out=pool)
+            ctrl = build_controls(scenario, params[rows], physics, out=control)
+            x0 = initial_state(scenario, params[rows])
+            m = len(rows)
+            start = time.perf_counter()
+            runner.rollout(pool[:m], datas, x0, ctrl, control_spec=CONTROL_SPEC, skip_checks=True, nstep=nstep,
+                           state=state[:m], sensordata=sensordata[:m])
+            clock += time.perf_counter() - start
+    return n / clock
+
+
+def read_rate(scenario, rows: int, folder: Path) -> float:
+    """Rows per second of ``Store.rollouts`` on a store of ``rows`` synthetic rollouts."""
+    rng = np.random.default_rng(0)
+    names = scenario.features.names
+    with Store(folder / "read.sqlite") as store:
+        run = store.start_run("sweep", scenario, seed=0, design="sobol", planned=rows, nominal=False)
+        for first in range(0, rows, 5000):
+            idx = np.arange(first, min(first + 5000, rows))
+            m = len(idx)
+            store.write_rollouts(run, RolloutBatch(
+                idx, rng.random((m, scenario.dim)), rng.random((m, len(scenario.physics))),
+                tuple(r.name for r in scenario.physics), np.array(["ok"] * m), np.array([""] * m),
+                rng.random(m), {k: rng.random(m) for k in names}))
+        start = time.perf_counter()
+        batch = store.rollouts(scenario.content_hash)
+        seconds = time.perf_counter() - start
+    assert len(batch) == rows
+    return rows / seconds
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--rollouts", type=int, default=10_000, help="rollouts in each phase (default 10^4)")
+    parser.add_argument("--quick", action="store_true", help="a small run: 500 rollouts, 10^4 rows read")
+    parser.add_argument("--workers", type=int, default=os.cpu_count() or 1, help="simulation threads")
+    parser.add_argument("--chunk-size", type=int, default=None, help="sweep chunk size (default the sweep's)")
+    parser.add_argument("--read-rows", type=int, default=100_000, help="rows in the store-read phase")
+    parser.add_argument("--scenario", default=str(ROOT / "scenarios" / "push_recovery.toml"))
+    args = parser.parse_args()
+    n = 500 if args.quick else args.rollouts
+    read_rows = 10_000 if args.quick else args.read_rows
+    scenario = load_scenario(args.scenario)
+    seed = 0
+
+    with tempfile.TemporaryDirectory() as tmp:
+        summary = sweep(scenario, n, seed=seed, store=Path(tmp) / "bench.sqlite", workers=args.workers,
+                        chunk_size=args.chunk_size, progress=False)
+        sweep_rate = summary.ran_now / summary.wall_seconds
+        peak = peak_rss_mb()
+        bare = bare_rate(scenario, n, seed, args.workers)
+        reads = read_rate(scenario, read_rows, Path(tmp))
+
+    ratio = sweep_rate / bare
+    print(f"scenario {scenario.name}: {n} rollouts of {scenario.task.nstep} steps, {args.workers} thread(s), "
+          f"{platform.processor() or platform.machine()}, {os.cpu_count()} cores")
+    print(f"sweep end to end : {sweep_rate:8.1f} rollouts/s  ({summary.wall_seconds:.1f} s; "
+          f"{summary.ok} ok, {summary.fell} fell, {summary.diverged} diverged)")
+    print(f"bare mujoco.rollout: {bare:6.1f} rollouts/s")
+    print(f"ratio            : {ratio:8.3f}  (target >= 0.8)")
+    print(f"peak memory      : {peak:8.1f} MB (target < 1024)")
+    print(f"store read       : {reads:8.0f} rows/s ({read_rows} rows in {read_rows / reads:.2f} s)")
+    print(json.dumps({
+        "sweep_rollouts_per_s": round(sweep_rate, 2), "bare_rollouts_per_s": round(bare, 2),
+        "ratio": round(ratio, 4), "peak_memory_mb": round(peak, 1), "rollouts": n, "threads": args.workers,
+        "nstep": scenario.task.nstep, "store_read_rows_per_s": round(reads), "store_read_rows": read_rows,
+        "date": datetime.now(timezone.utc).date().isoformat(),
+    }))
+
+
+if __name__ == "__main__":
+    main()
