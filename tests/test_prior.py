@@ -21,7 +21,7 @@ from gapgauge.store import Store
 
 SCENARIO_PATH = Path(__file__).resolve().parents[1] / "scenarios" / "push_recovery.toml"
 RHO, OFFSET = 1.0, 0.3
-N_SIM = 400
+N_SIM = 200
 
 
 def sim_objective(U: np.ndarray) -> np.ndarray:

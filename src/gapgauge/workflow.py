@@ -6,9 +6,9 @@ here make the default wiring, read what the store holds and write what the comma
 
 from __future__ import annotations
 
+import functools
 import json
 from collections.abc import Callable, Sequence
-from dataclasses import replace
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
@@ -22,52 +22,16 @@ if TYPE_CHECKING:  # pragma: no cover - without importing the heavy modules at r
     from .compare.calibration import CalibrationResult
 
 
-def hardware_view_simulator(scenario: Scenario) -> Callable[[np.ndarray, np.ndarray], RolloutBatch]:
-    """``simulator(params (n x dim), physics (n x K)) -> RolloutBatch`` whose features are measured as a
-    hardware log's are.
+def scenario_simulator(scenario: Scenario) -> Callable[[np.ndarray, np.ndarray], RolloutBatch]:
+    """``simulator(params (n x dim), physics (n x k)) -> RolloutBatch`` for ``scenario``.
 
-    :func:`gapgauge.sim.rollout.simulate` computes features on the raw simulated signals, but a trial's
-    features come from its log after :func:`gapgauge.store.logs.read_log` resampled it to
-    ``[hardware] sample_rate_hz`` and low-passed it at ``lowpass_hz`` (Butterworth, zero phase), with
-    the centre of pressure derived from the heel and toe forces when the log has no ``cop_x``. Peak
-    torque, positive work and the centre-of-pressure measures change under that filter by more than the
-    simulated spread, which a calibration would otherwise "explain" with wrong physics. So the
-    simulated trajectories go through the same path: only the channels the log maps, resampled onto
-    the hardware rate when it differs from the time step, the same low-pass, then
-    :func:`gapgauge.features.compute_features`. ``fell``, the status and the objective stay the
-    simulator's own (they use channels a log does not have, such as body contact).
+    :func:`gapgauge.sim.rollout.simulate` measures features through
+    :func:`gapgauge.observe.logger_view`, exactly as a hardware log is measured, so simulated and
+    hardware features are comparable.
     """
-    from .features import compute_features
     from .sim.rollout import simulate
-    from .store.logs import lowpass
-    from .trajectory import Trajectory
 
-    hw = scenario.hardware
-    mapped = [c.channel for c in hw.columns]
-    names = [f for f in scenario.features.names if f != "fell"]
-
-    def simulator(params: np.ndarray, physics: np.ndarray) -> RolloutBatch:
-        batch, traj = simulate(scenario, params, physics, return_trajectory=True)
-        t = traj.t
-        channels = {c: np.asarray(traj.channels[c], dtype=float) for c in mapped if c in traj.channels}
-        rate = hw.sample_rate_hz
-        if abs(traj.dt * rate - 1.0) > 1e-9:
-            grid = np.arange(int(np.ceil(t[0] * rate - 1e-6)), int(np.floor(t[-1] * rate + 1e-6)) + 1) / rate
-            channels = {c: np.vstack([np.interp(grid, t, row) for row in v]) for c, v in channels.items()}
-            t = grid
-        if hw.lowpass_hz is not None and hw.lowpass_hz < rate / 2:
-            for c, v in channels.items():
-                ok = np.all(np.isfinite(v), axis=1)
-                if ok.any():
-                    v = v.copy()
-                    v[ok] = lowpass(v[ok], hw.lowpass_hz, rate)
-                    channels[c] = v
-        view = Trajectory(t, channels, traj.onset)
-        features = dict(batch.features)
-        features.update(compute_features(view, scenario.features, names))
-        return replace(batch, features=features)
-
-    return simulator
+    return functools.partial(simulate, scenario)
 
 
 def trial_arrays(scenario: Scenario, store: Any) -> tuple[np.ndarray, np.ndarray, list[str], list[int]]:
@@ -107,7 +71,7 @@ def calibrate_from_store(
     """Calibrate the simulator's physics to the trials in ``store`` and write the calibrated overlay.
 
     Reads the scenario's trials, runs :func:`gapgauge.compare.calibration.calibrate` with the
-    simulator seen through the hardware path (:func:`hardware_view_simulator`, unless ``simulator`` is
+    scenario's simulator (:func:`scenario_simulator`, unless ``simulator`` is
     given), writes the overlay (default ``<scenario stem>.calibrated.toml`` beside the scenario) and
     checks that :func:`gapgauge.scenario.load_scenario` accepts it, stores the result JSON as model kind
     ``"calibration"`` and, with ``json_path``, writes it there too.
@@ -130,7 +94,7 @@ def calibrate_from_store(
 
     params, features, names, trial_ids = trial_arrays(scenario, store)
     if simulator is None:
-        simulator = hardware_view_simulator(scenario)
+        simulator = scenario_simulator(scenario)
     result = calibrate(
         scenario, params, features, names, simulator, physics_names=physics_names, seed=seed,
         progress=progress, **options,

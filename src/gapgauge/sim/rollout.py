@@ -31,6 +31,7 @@ import mujoco.rollout
 import numpy as np
 
 from ..features import compute_features, cop_from_foot_forces
+from ..observe import logger_view
 from ..records import RolloutBatch
 from ..scenario import Scenario
 from ..trajectory import Trajectory
@@ -159,6 +160,7 @@ def simulate(
     task = scenario.task
     nstep, dt = task.nstep, task.timestep
     names = scenario.features.names
+    measured = [name for name in names if name != "fell"]
     features = {name: np.full(n, np.nan) for name in names}
     reason = [""] * n
 
@@ -207,7 +209,10 @@ def simulate(
                 traj = Trajectory(t, {c: v for c, v in ch.items() if c != "cop_x"}, onset=task.onset)
                 if not good.all():
                     traj = traj.select(good)
-                got = compute_features(traj, scenario.features, names)
+                # Measured as a log is (same resampling and low-pass); the fall itself is judged on the
+                # raw signals, which include body contact that no logger records.
+                got = compute_features(logger_view(traj, scenario.hardware), scenario.features, measured)
+                got["fell"] = compute_features(traj, scenario.features, ["fell"])["fell"]
                 for name in names:
                     features[name][rows[good]] = got[name]
 

@@ -34,9 +34,9 @@ from pathlib import Path
 from typing import Any, BinaryIO
 
 import numpy as np
-from scipy import signal
 
 from ..errors import GapgaugeError, LogError, where
+from ..observe import lowpass
 from ..scenario import Scenario
 from ..trajectory import CHANNELS, JOINTS, Trajectory
 from ..units import UNITS, factor
@@ -50,7 +50,6 @@ BLOCK_ROWS = 8192
 #: slack beyond the model's joint range before an angle counts as impossible, rad (soft limits give a little)
 JOINT_LIMIT_SLACK = 0.1
 #: Butterworth order of the optional low-pass (sosfiltfilt doubles it: zero phase, order 8 magnitude)
-LOWPASS_ORDER = 4
 OUTCOMES = ("stood", "fell")
 SIDECAR_KEYS = ("params", "robot_id", "recorded_at", "outcome", "notes", "synthetic")
 BAG_SUFFIXES = (".mcap", ".db3")
@@ -538,20 +537,6 @@ def build_trial(
         logged_rate_hz=float(min(rates)),
         nsamples=int(sum(len(s.t) for s in streams)),
     )
-
-
-def lowpass(values: np.ndarray, cutoff_hz: float, rate_hz: float, order: int = LOWPASS_ORDER) -> np.ndarray:
-    """Zero-phase Butterworth low-pass along the last axis (``scipy.signal.sosfiltfilt``).
-
-    Args:
-        values: ``(..., n)`` samples at ``rate_hz``, e.g. ``(nchannel x n)``.
-        cutoff_hz: -3 dB frequency of each pass, Hz (below ``rate_hz / 2``).
-
-    Short series get the longest padding they allow (sosfiltfilt's default needs ``n > 3 (2 nsection + 1)``).
-    """
-    sos = signal.butter(order, cutoff_hz, btype="low", fs=rate_hz, output="sos")
-    default_pad = 3 * (2 * len(sos) + 1)
-    return signal.sosfiltfilt(sos, values, axis=-1, padlen=min(default_pad, values.shape[-1] - 1))
 
 
 def _check_time(scenario: Scenario, s: Stream) -> None:
