@@ -3,10 +3,14 @@
 In one process:
 
 1. the sweep end to end (design, physics draws, model building, simulation, features, objective and
-   store writes) into a temporary store, timed by wall clock; peak resident memory read after it;
+   store writes) into a temporary store, timed by wall clock; peak resident memory of the process
+   read after the last round (an upper bound: it covers the bare phases too, whose buffers are the
+   size of the simulator's);
 2. bare ``mujoco.rollout`` on the same models (same parameters and physics draws), horizon, time
    step, controls and thread count, in batches of the simulator's sub-batch size; only the rollout
    calls are timed (models and controls are built outside the clock);
+   the two phases alternate in ``--rounds`` rounds so that load from others on a shared machine
+   falls on both alike; process CPU time is reported too (its ratio is the overhead alone);
 3. reading the rollouts back from a store (``Store.rollouts``) at ``--read-rows`` rows.
 
 Prints both rates and their ratio; the last line is one JSON object with ``sweep_rollouts_per_s``,
@@ -51,8 +55,9 @@ def peak_rss_mb() -> float:
     return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
 
 
-def bare_rate(scenario, n: int, seed: int, nthread: int) -> float:
-    """Rollouts per second of bare ``mujoco.rollout`` over the sweep's own models and inputs."""
+def bare_seconds(scenario, n: int, seed: int, nthread: int) -> tuple[float, float]:
+    """Wall and process CPU seconds of bare ``mujoco.rollout`` over the sweep's own models and inputs
+    (``n`` rollouts of the sweep with this seed)."""
     base, _ = _load(scenario.model_path)
     nstep = scenario.task.nstep
     params = make_design(scenario, n, "sobol", seed)
@@ -62,7 +67,7 @@ def bare_rate(scenario, n: int, seed: int, nthread: int) -> float:
     sensordata = np.empty((size, nstep, base.nsensordata))
     datas = [mujoco.MjData(base) for _ in range(nthread)]
     pool: list[mujoco.MjModel] = []
-    clock = 0.0
+    wall = cpu = 0.0
     with mujoco.rollout.Rollout(nthread=nthread if nthread > 1 else 0) as runner:
         for first in range(0, n, size):
             rows = np.arange(first, min(first + size, n))
@@ -71,11 +76,12 @@ def bare_rate(scenario, n: int, seed: int, nthread: int) -> float:
             ctrl = build_controls(scenario, params[rows], physics, out=control)
             x0 = initial_state(scenario, params[rows])
             m = len(rows)
-            start = time.perf_counter()
+            start, start_cpu = time.perf_counter(), time.process_time()
             runner.rollout(pool[:m], datas, x0, ctrl, control_spec=CONTROL_SPEC, skip_checks=True, nstep=nstep,
                            state=state[:m], sensordata=sensordata[:m])
-            clock += time.perf_counter() - start
-    return n / clock
+            wall += time.perf_counter() - start
+            cpu += time.process_time() - start_cpu
+    return wall, cpu
 
 
 def read_rate(scenario, rows: int, folder: Path) -> float:
@@ -105,34 +111,49 @@ def main() -> None:
     parser.add_argument("--workers", type=int, default=os.cpu_count() or 1, help="simulation threads")
     parser.add_argument("--chunk-size", type=int, default=None, help="sweep chunk size (default the sweep's)")
     parser.add_argument("--read-rows", type=int, default=100_000, help="rows in the store-read phase")
+    parser.add_argument("--rounds", type=int, default=4, help="alternations of the two phases (default 4)")
     parser.add_argument("--scenario", default=str(ROOT / "scenarios" / "push_recovery.toml"))
     args = parser.parse_args()
     n = 500 if args.quick else args.rollouts
     read_rows = 10_000 if args.quick else args.read_rows
     scenario = load_scenario(args.scenario)
-    seed = 0
 
+    # Rounds alternate the two phases so that load from other users of a shared machine falls on both
+    # alike; each round is its own sweep run (seed = round), and bare runs that run's models and inputs.
+    rounds = max(1, min(args.rounds, n))
+    sizes = [n // rounds + (r < n % rounds) for r in range(rounds)]
+    sweep_wall = sweep_cpu = bare_wall = bare_cpu = 0.0
+    counts = {"ok": 0, "fell": 0, "diverged": 0}
     with tempfile.TemporaryDirectory() as tmp:
-        summary = sweep(scenario, n, seed=seed, store=Path(tmp) / "bench.sqlite", workers=args.workers,
-                        chunk_size=args.chunk_size, progress=False)
-        sweep_rate = summary.ran_now / summary.wall_seconds
-        peak = peak_rss_mb()
-        bare = bare_rate(scenario, n, seed, args.workers)
+        for seed, size in enumerate(sizes):
+            start_cpu = time.process_time()
+            summary = sweep(scenario, size, seed=seed, store=Path(tmp) / "bench.sqlite", workers=args.workers,
+                            chunk_size=args.chunk_size, progress=False)
+            sweep_cpu += time.process_time() - start_cpu
+            sweep_wall += summary.wall_seconds
+            counts = {k: v + getattr(summary, k) for k, v in counts.items()}
+            wall, cpu = bare_seconds(scenario, size, seed, args.workers)
+            bare_wall += wall
+            bare_cpu += cpu
+        peak = peak_rss_mb()  # before the read phase; bare's buffers are the size of the simulator's
         reads = read_rate(scenario, read_rows, Path(tmp))
-
+    sweep_rate, bare = n / sweep_wall, n / bare_wall
     ratio = sweep_rate / bare
+    cpu_ratio = bare_cpu / sweep_cpu
     print(f"scenario {scenario.name}: {n} rollouts of {scenario.task.nstep} steps, {args.workers} thread(s), "
           f"{platform.processor() or platform.machine()}, {os.cpu_count()} cores")
-    print(f"sweep end to end : {sweep_rate:8.1f} rollouts/s  ({summary.wall_seconds:.1f} s; "
-          f"{summary.ok} ok, {summary.fell} fell, {summary.diverged} diverged)")
+    print(f"sweep end to end : {sweep_rate:8.1f} rollouts/s  ({sweep_wall:.1f} s in {rounds} round(s); "
+          f"{counts['ok']} ok, {counts['fell']} fell, {counts['diverged']} diverged)")
     print(f"bare mujoco.rollout: {bare:6.1f} rollouts/s")
-    print(f"ratio            : {ratio:8.3f}  (target >= 0.8)")
+    print(f"ratio            : {ratio:8.3f}  (target >= 0.8; wall clock)")
+    print(f"CPU-time ratio   : {cpu_ratio:8.3f}  (bare CPU s / sweep CPU s: the overhead alone, whatever the load)")
     print(f"peak memory      : {peak:8.1f} MB (target < 1024)")
     print(f"store read       : {reads:8.0f} rows/s ({read_rows} rows in {read_rows / reads:.2f} s)")
     print(json.dumps({
         "sweep_rollouts_per_s": round(sweep_rate, 2), "bare_rollouts_per_s": round(bare, 2),
         "ratio": round(ratio, 4), "peak_memory_mb": round(peak, 1), "rollouts": n, "threads": args.workers,
-        "nstep": scenario.task.nstep, "store_read_rows_per_s": round(reads), "store_read_rows": read_rows,
+        "nstep": scenario.task.nstep, "cpu_ratio": round(cpu_ratio, 4), "rounds": rounds,
+        "store_read_rows_per_s": round(reads), "store_read_rows": read_rows,
         "date": datetime.now(timezone.utc).date().isoformat(),
     }))
 

@@ -12,6 +12,7 @@ the caution end above 768 px, that is, show without scrolling.
 from __future__ import annotations
 
 import base64
+import fcntl
 import json
 import os
 import shutil
@@ -51,8 +52,12 @@ class Browser:
         self._from_child, from_child_w = os.pipe()
 
         def wire() -> None:  # in the child: the protocol's fds 3 (commands in) and 4 (replies out)
-            os.dup2(to_child_r, 3)
-            os.dup2(from_child_w, 4)
+            # Move both ends above 4 first: a pipe end may already be fd 3 or 4, and dup2 onto itself
+            # would neither free the slot for the other end nor clear close-on-exec.
+            read_end = fcntl.fcntl(to_child_r, fcntl.F_DUPFD, 10)
+            write_end = fcntl.fcntl(from_child_w, fcntl.F_DUPFD, 10)
+            os.dup2(read_end, 3)
+            os.dup2(write_end, 4)
 
         self.process = subprocess.Popen(
             [

@@ -8,12 +8,12 @@ from pathlib import Path
 import numpy as np
 import pytest
 from click.testing import CliRunner
-from test_prior import SCENARIO_PATH, make_store
 
 from gapgauge.cli import CAUTION, main
 from gapgauge.compare.prior import fit_prior
 from gapgauge.compare.propose import propose
 from gapgauge.sim.standin import load_params_file
+from test_prior import SCENARIO_PATH, make_store
 
 
 @pytest.fixture(scope="module")

@@ -276,3 +276,15 @@ def test_report_command_writes_the_report_and_refuses_a_missing_store(scenario, 
     missing = CliRunner().invoke(main, ["report", scenario_arg, "--store", str(tmp_path / "none.sqlite")])
     assert missing.exit_code == 2
     assert "store not found" in missing.output
+
+
+def test_a_joint_shift_asks_for_calibration_even_when_features_pass_one_by_one(scenario, tmp_path):
+    """MMD p below the level (Gretton et al. 2012 test as stored by the shift step) outranks the per-feature
+    verdicts: the next step is calibration, not hardware."""
+    store = build_store(scenario, tmp_path / "gapgauge.sqlite", kinds=("shift", "prior", "proposals", "budget"))
+    shift = store.load_model("shift", scenario.content_hash)[0]
+    shift["joint"]["mmd_p_value"] = 0.001
+    store.save_model("shift", scenario.content_hash, params=shift)
+    decision = decide(collect(scenario, store))
+    assert decision.level == "caution" and "calibrate" in decision.command
+    assert any("MMD, p = 0.001" in r for r in decision.reasons)

@@ -22,7 +22,6 @@ from gapgauge.store.codec import npz_to_arrays
 
 ROOT = Path(__file__).resolve().parents[1]
 SCENARIO = ROOT / "scenarios" / "push_recovery.toml"
-FEATURES = ("fell", "recovery_time", "peak_com_excursion")
 
 
 @pytest.fixture(scope="module")
@@ -36,7 +35,7 @@ def batch_of(scenario, indices, seed: int = 0) -> RolloutBatch:
     indices = np.asarray(indices, dtype=np.int64)
     n = len(indices)
     status = np.array(["ok", "fell", "diverged"] * n)[:n]
-    features = {name: rng.random(n) for name in FEATURES}
+    features = {name: rng.random(n) for name in scenario.features.names}
     features["fell"] = (status == "fell").astype(float)
     objective = rng.random(n)
     diverged = status == "diverged"
@@ -68,11 +67,11 @@ def test_rollouts_read_back_exactly_as_written(tmp_path, scenario):
         run = store.start_run("sweep", scenario, seed=1, design="sobol", planned=30, nominal=False)
         store.write_rollouts(run, written)
         back = store.rollouts(scenario.content_hash)
-    # float64 values survive the JSON text exactly (repr round trip), NaN survives as null
+    # float64 values and NaN survive exactly
     np.testing.assert_array_equal(back.params, written.params)
     np.testing.assert_array_equal(back.physics, written.physics)
     np.testing.assert_array_equal(back.objective, written.objective)
-    for name in FEATURES:
+    for name in scenario.features.names:
         np.testing.assert_array_equal(back.features[name], written.features[name])
     assert back.status.tolist() == written.status.tolist()
     assert back.physics_names == written.physics_names
@@ -210,7 +209,8 @@ def test_check_passes_a_healthy_store_and_names_damage(tmp_path, scenario):
         healthy = store.check()
     with sqlite3.connect(path) as conn:  # damage it behind the store's back
         conn.execute("DELETE FROM rollouts WHERE idx = 4")
-        conn.execute("UPDATE rollouts SET features_json = '{\"fell\": null}' WHERE idx = 0")
+        nan_features = np.full(len(scenario.features.names), np.nan).tobytes()
+        conn.execute("UPDATE rollouts SET features = ? WHERE idx = 0", (nan_features,))
     with Store(path) as store:
         problems = store.check()
     assert healthy == []

@@ -56,7 +56,7 @@ def rows(path: Path) -> list[tuple]:
     """Every rollout row as stored, read with sqlite3 directly, by index."""
     with sqlite3.connect(path) as conn:
         return conn.execute(
-            "SELECT idx, params_json, physics_json, status, objective, features_json FROM rollouts ORDER BY idx"
+            "SELECT idx, params, physics, status, objective, features FROM rollouts ORDER BY idx"
         ).fetchall()
 
 
@@ -66,16 +66,26 @@ def assert_same_rows(got: list[tuple], want: list[tuple]) -> None:
     assert [r[:4] for r in got] == [r[:4] for r in want]
     np.testing.assert_allclose([np.nan if r[4] is None else r[4] for r in got],
                                [np.nan if r[4] is None else r[4] for r in want], rtol=1e-12)
-    for g, w in zip(got, want, strict=True):
-        g_features, w_features = json.loads(g[5]), json.loads(w[5])
-        assert list(g_features) == list(w_features)
-        np.testing.assert_allclose(np.array(list(g_features.values()), dtype=float),
-                                   np.array(list(w_features.values()), dtype=float), rtol=1e-12)
+    np.testing.assert_allclose(np.frombuffer(b"".join(r[5] for r in got), dtype="<f8"),
+                               np.frombuffer(b"".join(r[5] for r in want), dtype="<f8"), rtol=1e-12)
 
 
 def scalar(path: Path, sql: str):
     with sqlite3.connect(path) as conn:
         return conn.execute(sql).fetchone()[0]
+
+
+def wait_for_first_chunk(proc: subprocess.Popen, store: Path) -> None:
+    """Poll the store (read-only, with sqlite3) until the running sweep has committed a chunk."""
+    deadline = time.monotonic() + 300
+    while proc.poll() is None and time.monotonic() < deadline:
+        time.sleep(0.02)
+        if store.exists():
+            try:
+                if scalar(store, "SELECT COUNT(*) FROM rollouts") > 0:
+                    return
+            except sqlite3.OperationalError:  # tables not created yet
+                pass
 
 
 def gapgauge(*args: str) -> list[str]:
@@ -87,16 +97,8 @@ def test_a_sweep_killed_with_sigkill_resumes_without_duplicates(project, referen
     command = gapgauge("sweep", str(project), "--rollouts", str(PLANNED), "--seed", str(SEED),
                        "--store", str(store), "--chunk-size", "40", "--workers", "2")
     proc = subprocess.Popen(command, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
-    stored = 0
     try:
-        deadline = time.monotonic() + 300
-        while stored == 0 and proc.poll() is None and time.monotonic() < deadline:
-            time.sleep(0.02)
-            if store.exists():
-                try:
-                    stored = scalar(store, "SELECT COUNT(*) FROM rollouts")
-                except sqlite3.OperationalError:  # schema not created yet
-                    stored = 0
+        wait_for_first_chunk(proc, store)
         os.kill(proc.pid, signal.SIGKILL)
     finally:
         proc.wait()
@@ -115,6 +117,22 @@ def test_a_sweep_killed_with_sigkill_resumes_without_duplicates(project, referen
     again = subprocess.run(command, capture_output=True, text=True)
     assert again.returncode == 0 and "nothing left to do" in again.stdout
     assert scalar(store, "SELECT COUNT(*) FROM rollouts") == PLANNED
+
+
+def test_ctrl_c_stops_a_sweep_with_exit_130_and_keeps_whole_chunks(project, tmp_path):
+    store = tmp_path / "interrupted.sqlite"
+    command = gapgauge("sweep", str(project), "--rollouts", str(PLANNED), "--seed", str(SEED),
+                       "--store", str(store), "--chunk-size", "40", "--workers", "2")
+    # a shell's background job ignores SIGINT; give the child the default disposition, as a terminal does
+    proc = subprocess.Popen(command, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
+                            preexec_fn=lambda: signal.signal(signal.SIGINT, signal.SIG_DFL))
+    wait_for_first_chunk(proc, store)
+    proc.send_signal(signal.SIGINT)
+    _, err = proc.communicate()
+    assert proc.returncode == 130, err
+    assert "run the same command again" in err and "Traceback" not in err
+    kept = scalar(store, "SELECT COUNT(*) FROM rollouts")
+    assert 0 < kept < PLANNED and kept % 40 == 0
 
 
 def test_a_dask_run_stores_the_same_rows_as_a_local_run(project, reference, tmp_path):

@@ -10,6 +10,7 @@ import sys
 
 import click
 from rich.console import Console
+from rich.markup import escape
 
 from . import __version__
 from .errors import GapgaugeError
@@ -40,7 +41,8 @@ class _Group(click.Group):
         try:
             return super().invoke(ctx)
         except GapgaugeError as exc:
-            err_console.print(f"[bold red]error:[/] {exc}", markup=True, soft_wrap=True)
+            # escape: messages quote TOML tables such as [physics], which rich would eat as markup
+            err_console.print(f"[bold red]error:[/] {escape(str(exc))}", markup=True, soft_wrap=True)
             sys.exit(exc.exit_code)
 
 

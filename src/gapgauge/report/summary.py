@@ -338,7 +338,7 @@ def decide(data: ReportData) -> Decision:
             command,
             tuple(reasons),
         )
-    if counts["undecided"] * 2 > total:
+    if counts["undecided"] * 2 >= total:
         more = trials_to_decide(shift)
         proposals = (r.get("proposals") or {}).get("proposals") or []
         step = "Run more hardware trials before judging carry-over"
@@ -353,6 +353,22 @@ def decide(data: ReportData) -> Decision:
             None if proposals else data.command("propose", "--count", "5"),
             tuple(reasons),
         )
+    joint = shift.get("joint") if isinstance(shift.get("joint"), dict) else {}
+    level = number((shift.get("settings") or {}).get("level")) or 0.05
+    mmd_p = number(joint.get("mmd_p_value"))
+    if mmd_p is not None and mmd_p < level:
+        reasons.append(
+            f"the joint test (MMD, p = {mmd_p:.3g}) finds simulation and hardware differ when all features "
+            "are taken together"
+        )
+        if calibration is None:
+            return Decision(
+                "Features carry over one by one, but jointly simulation and hardware differ",
+                "caution",
+                "Calibrate the simulator's physics to the trials before leaning on the prior.",
+                data.command("calibrate"),
+                tuple(reasons),
+            )
     prior = r.get("prior")
     if prior is None:
         return Decision(

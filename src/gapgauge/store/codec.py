@@ -1,10 +1,10 @@
 """How values are written into and read out of the store: strict JSON and npz, never pickle.
 
-Rows of numbers are JSON arrays (non-finite values as ``null``) and feature rows JSON objects, so the
-store stays readable with any SQLite client. Reading many rows parses them as one JSON document,
-which keeps 10^5 rollouts to well under a second of decoding (see benchmarks/sweep_throughput.py).
-Arrays (trial series, fitted-model arrays) are ``.npz`` written with ``numpy.savez`` and read with
-``allow_pickle=False``.
+A rollout's numbers (parameters, physics draw, features) are float64 little-endian BLOBs, one per
+row and column group, so 10^5 rows decode with one ``numpy.frombuffer`` each (why: see
+:mod:`gapgauge.store.schema`). Everything named (trial parameters and features, model parameters,
+configurations) is strict JSON with NaN and infinity as ``null``. Arrays (trial series, fitted-model
+arrays) are ``.npz`` written with ``numpy.savez`` and read with ``allow_pickle=False``.
 """
 
 from __future__ import annotations
@@ -45,77 +45,67 @@ def dumps(value: Any) -> str:
     return json.dumps(jsonable(value), allow_nan=False, separators=(",", ":"))
 
 
-def row_arrays(matrix: np.ndarray) -> list[str]:
-    """One JSON array per row of ``matrix (n x k)``; NaN as null. float64 values round-trip exactly."""
-    matrix = np.asarray(matrix, dtype=float)
-    if np.isfinite(matrix).all():
-        return [json.dumps(row, separators=(",", ":")) for row in matrix.tolist()]
-    return [dumps(row) for row in matrix.tolist()]
+FLOAT = np.dtype("<f8")  # stored byte order, whatever the machine's
 
 
-def feature_rows(features: dict[str, np.ndarray], n: int) -> list[str]:
-    """One JSON object per rollout from ``features`` (name -> ``(n,)``); NaN as null."""
-    names = list(features)
-    columns = [np.asarray(features[k], dtype=float).tolist() for k in names]
-    out = []
-    for i in range(n):
-        row = {}
-        for name, column in zip(names, columns, strict=True):
-            v = column[i]
-            row[name] = v if math.isfinite(v) else None
-        out.append(json.dumps(row, separators=(",", ":")))
-    return out
+def row_blobs(matrix: np.ndarray) -> list[bytes]:
+    """One float64 little-endian BLOB per row of ``matrix (n x k)``; NaN stays NaN, values exact."""
+    matrix = np.ascontiguousarray(matrix, dtype=FLOAT)
+    return [row.tobytes() for row in matrix]
 
 
-def parse_matrix(texts: Sequence[str], width: int) -> np.ndarray:
-    """``(n x width)`` float array from JSON array rows, parsed as one document; null -> NaN."""
-    if not texts:
+def feature_matrix(features: dict[str, np.ndarray], names: Sequence[str], n: int) -> np.ndarray:
+    """``(n x len(names))`` float matrix of the named features (columns in ``names`` order)."""
+    missing = [k for k in names if k not in features]
+    if missing:
+        raise ValueError(f"features {missing} are missing from the batch (the store expects {list(names)})")
+    if not names:
+        return np.empty((n, 0))
+    return np.column_stack([np.asarray(features[k], dtype=float).reshape(n) for k in names])
+
+
+def parse_blobs(blobs: Sequence[bytes], width: int) -> np.ndarray:
+    """``(n x width)`` float array from per-row float64 BLOBs (one ``frombuffer`` for all rows)."""
+    if not blobs:
         return np.empty((0, width))
-    values = json.loads("[" + ",".join(texts) + "]")
-    return np.array(values, dtype=float).reshape(len(texts), width)
+    flat = np.frombuffer(b"".join(blobs), dtype=FLOAT)
+    if flat.size != len(blobs) * width:
+        raise ValueError(f"stored rows do not hold {width} numbers each")
+    return flat.reshape(len(blobs), width).astype(float)
 
 
-def parse_features(texts: Sequence[str], names: Sequence[str]) -> dict[str, np.ndarray]:
-    """name -> ``(n,)`` float from JSON object rows; a missing or null value is NaN."""
-    rows = json.loads("[" + ",".join(texts) + "]") if texts else []
-    keys = list(names)
-    for row in rows[:1]:
-        keys += [k for k in row if k not in keys]
-    return {k: np.array([row.get(k) for row in rows], dtype=float) for k in keys}
-
-
-def empty_batch(dim: int, physics_names: tuple[str, ...], feature_names: Sequence[str]) -> RolloutBatch:
+def empty_batch(columns: dict[str, list[str]]) -> RolloutBatch:
     """A batch of no rollouts with the right column counts."""
     return RolloutBatch(
         indices=np.empty(0, dtype=np.int64),
-        params=np.empty((0, dim)),
-        physics=np.empty((0, len(physics_names))),
-        physics_names=physics_names,
+        params=np.empty((0, len(columns["parameters"]))),
+        physics=np.empty((0, len(columns["physics"]))),
+        physics_names=tuple(columns["physics"]),
         status=np.empty(0, dtype="<U8"),
-        reason=np.empty(0, dtype=object).astype(str),
+        reason=np.empty(0, dtype="<U1"),
         objective=np.empty(0),
-        features={k: np.empty(0) for k in feature_names},
+        features={k: np.empty(0) for k in columns["features"]},
         run_ids=np.empty(0, dtype=np.int64),
     )
 
 
-def batch_from_rows(
-    rows: list[tuple], dim: int, physics_names: tuple[str, ...], feature_names: Sequence[str]
-) -> RolloutBatch:
-    """A :class:`RolloutBatch` from rows ``(run_id, idx, params_json, physics_json, status, reason,
-    objective, features_json)``."""
+def batch_from_rows(rows: list[tuple], columns: dict[str, list[str]]) -> RolloutBatch:
+    """A :class:`RolloutBatch` from rows ``(run_id, idx, params, physics, status, reason, objective,
+    features)`` of one scenario whose stored column names are ``columns``."""
     if not rows:
-        return empty_batch(dim, physics_names, feature_names)
+        return empty_batch(columns)
     run_ids, idx, params, physics, status, reason, objective, features = zip(*rows, strict=True)
+    names = columns["features"]
+    values = parse_blobs(features, len(names))
     return RolloutBatch(
         indices=np.array(idx, dtype=np.int64),
-        params=parse_matrix(params, dim),
-        physics=parse_matrix(physics, len(physics_names)),
-        physics_names=physics_names,
+        params=parse_blobs(params, len(columns["parameters"])),
+        physics=parse_blobs(physics, len(columns["physics"])),
+        physics_names=tuple(columns["physics"]),
         status=np.array(status, dtype="<U8"),
         reason=np.array(reason, dtype=str),
-        objective=np.array([np.nan if v is None else v for v in objective], dtype=float),
-        features=parse_features(features, feature_names),
+        objective=np.array(objective, dtype=float),  # None (NULL) becomes NaN
+        features={k: values[:, j].copy() for j, k in enumerate(names)},
         run_ids=np.array(run_ids, dtype=np.int64),
     )
 

@@ -71,6 +71,7 @@ class Store:
         self.path = Path(path)
         self._lock = threading.RLock()
         self.backup_path: Path | None = None  # set when opening migrated an older schema
+        self._run_columns_cache: dict[int, dict[str, list[str]]] = {}  # scenario versions never change
         if not create and not self.path.exists():
             raise StoreError(f"{self.path}: no store here; run `gapgauge sweep` first or give --store PATH")
         self._check_file()
@@ -218,9 +219,13 @@ class Store:
     def add_scenario(self, scenario) -> str:
         """Store a scenario version (name, path, raw JSON) under its content hash; returns the hash."""
         raw = codec.json.dumps(scenario.raw, default=str)
+        columns = codec.dumps({"parameters": scenario.parameter_names,
+                               "physics": [r.name for r in scenario.physics],
+                               "features": list(scenario.features.names)})
         self._write(lambda c: c.execute(
-            "INSERT OR IGNORE INTO scenarios(hash, name, path, raw_json, created_at) VALUES (?, ?, ?, ?, ?)",
-            (scenario.content_hash, scenario.name, str(scenario.path), raw, utc_now()),
+            "INSERT OR IGNORE INTO scenarios(hash, name, path, raw_json, columns_json, created_at)"
+            " VALUES (?, ?, ?, ?, ?, ?)", (scenario.content_hash, scenario.name, str(scenario.path), raw, columns,
+                                          utc_now()),
         ))
         return scenario.content_hash
 
@@ -279,23 +284,27 @@ class Store:
         n = len(batch)
         if n == 0:
             return 0
+        columns = self._run_columns(run_id)
+        if batch.params.shape != (n, len(columns["parameters"])) or batch.physics.shape != (n, len(columns["physics"])):
+            raise ValueError(f"batch params {batch.params.shape} / physics {batch.physics.shape} do not fit the "
+                             f"scenario's {len(columns['parameters'])} parameters / {len(columns['physics'])} physics")
         rows = list(zip(
             [int(run_id)] * n,
             batch.indices.astype(np.int64).tolist(),
-            codec.row_arrays(batch.params),
-            codec.row_arrays(batch.physics),
+            codec.row_blobs(batch.params),
+            codec.row_blobs(batch.physics),
             [str(s) for s in batch.status],
             [str(s) for s in batch.reason],
             [float(v) if np.isfinite(v) else None for v in np.asarray(batch.objective, dtype=float)],
-            codec.feature_rows(batch.features, n),
+            codec.row_blobs(codec.feature_matrix(batch.features, columns["features"], n)),
             strict=True,
         ))
 
         def body(c: sqlite3.Connection) -> int:
             before = c.total_changes
             c.executemany(
-                "INSERT OR IGNORE INTO rollouts(run_id, idx, params_json, physics_json, status, reason,"
-                " objective, features_json) VALUES (?, ?, ?, ?, ?, ?, ?, ?)", rows,
+                "INSERT OR IGNORE INTO rollouts(run_id, idx, params, physics, status, reason,"
+                " objective, features) VALUES (?, ?, ?, ?, ?, ?, ?, ?)", rows,
             )
             return c.total_changes - before
 
@@ -307,9 +316,9 @@ class Store:
     ) -> RolloutBatch:
         """All stored rollouts of a scenario (runs of the given kinds, optionally only some runs and
         statuses), ordered by run and index; params columns in scenario parameter order."""
-        names = self._scenario_names(scenario_hash)
+        columns = self._columns(scenario_hash)
         sql, args = queries.rollout_select(scenario_hash, kinds, run_ids, status)
-        return codec.batch_from_rows(self._read(sql, args), *names)
+        return codec.batch_from_rows(self._read(sql, args), columns)
 
     def run_summary(self, run_id: int) -> dict:
         """Counts by status and the best (lowest-objective) ok rollout of a run:
@@ -317,24 +326,33 @@ class Store:
         counts = dict(self._read("SELECT status, COUNT(*) FROM rollouts WHERE run_id = ? GROUP BY status",
                                  (int(run_id),)))
         best = self._read(
-            "SELECT idx, objective, params_json FROM rollouts WHERE run_id = ? AND status = 'ok'"
+            "SELECT idx, objective, params FROM rollouts WHERE run_id = ? AND status = 'ok'"
             " AND objective IS NOT NULL ORDER BY objective, idx LIMIT 1", (int(run_id),),
         )
         out = {s: int(counts.get(s, 0)) for s in ("ok", "fell", "diverged")}
         out.update(best_objective=None, best_index=None, best_params=None)
         if best:
             out.update(best_index=int(best[0][0]), best_objective=float(best[0][1]),
-                       best_params=np.array(codec.json.loads(best[0][2]), dtype=float))
+                       best_params=codec.parse_blobs([best[0][2]], len(self._run_columns(run_id)["parameters"]))[0])
         return out
 
-    def _scenario_names(self, scenario_hash: str) -> tuple[int, tuple[str, ...], list[str]]:
-        rows = self._read("SELECT raw_json FROM scenarios WHERE hash = ?", (scenario_hash,))
+    def _columns(self, scenario_hash: str) -> dict[str, list[str]]:
+        """Stored column names ``{"parameters", "physics", "features"}`` of a scenario version."""
+        rows = self._read("SELECT columns_json FROM scenarios WHERE hash = ?", (scenario_hash,))
         if not rows:
             raise StoreError(
                 f"{self.path}: no scenario with hash {scenario_hash}; run `gapgauge sweep` on it first"
                 f" or see `gapgauge info --store {self.path}`"
             )
-        return queries.scenario_columns(rows[0][0])
+        return codec.json.loads(rows[0][0])
+
+    def _run_columns(self, run_id: int) -> dict[str, list[str]]:
+        if run_id not in self._run_columns_cache:
+            rows = self._read("SELECT scenario_hash FROM runs WHERE id = ?", (int(run_id),))
+            if not rows:
+                raise StoreError(f"{self.path}: no run {run_id}; see `gapgauge info --store {self.path}`")
+            self._run_columns_cache[run_id] = self._columns(rows[0][0])
+        return self._run_columns_cache[run_id]
 
     # ---- hardware trials and matches --------------------------------------------------------
     def add_trial(self, trial: TrialRecord) -> tuple[int, bool]:
@@ -384,8 +402,8 @@ class Store:
         rows = self._read("SELECT scenario_hash FROM trials WHERE id = ?", (int(trial_id),))
         if not rows:
             raise StoreError(f"{self.path}: no trial {trial_id}; see `gapgauge info --store {self.path}`")
-        names = self._scenario_names(rows[0][0])
-        return codec.batch_from_rows(self._read(queries.MATCHED_ROLLOUTS, (int(trial_id),)), *names)
+        columns = self._columns(rows[0][0])
+        return codec.batch_from_rows(self._read(queries.MATCHED_ROLLOUTS, (int(trial_id),)), columns)
 
     # ---- fitted models ----------------------------------------------------------------------
     def save_model(self, kind: str, scenario_hash: str, params: dict,

@@ -10,8 +10,9 @@ from collections.abc import Iterable, Sequence
 from pathlib import Path
 from typing import Any
 
+import numpy as np
+
 from ..records import STATUSES, TrialRecord
-from ..scenario import FEATURE_NAMES
 from . import schema
 
 RUNS = (
@@ -20,7 +21,7 @@ RUNS = (
 )
 
 ROLLOUT_COLUMNS = (
-    "ro.run_id, ro.idx, ro.params_json, ro.physics_json, ro.status, ro.reason, ro.objective, ro.features_json"
+    "ro.run_id, ro.idx, ro.params, ro.physics, ro.status, ro.reason, ro.objective, ro.features"
 )
 
 MATCHED_ROLLOUTS = (
@@ -48,17 +49,6 @@ def run_record(row: tuple):
     rid, kind, scenario_hash, seed, design, planned, nominal, config, status, done, created = row
     return RunRecord(int(rid), kind, scenario_hash, int(seed), design, int(planned), bool(nominal),
                      json.loads(config), status, int(done), created)
-
-
-def scenario_columns(raw_json: str) -> tuple[int, tuple[str, ...], list[str]]:
-    """``(dim, physics names, feature names)`` of a stored scenario, in scenario order."""
-    raw = json.loads(raw_json)
-    dim = len(raw.get("parameters", []))
-    physics = tuple(raw.get("physics", {}))
-    features = list((raw.get("features") or {}).get("names", FEATURE_NAMES))
-    if "fell" not in features:
-        features = ["fell", *features]
-    return dim, physics, features
 
 
 def rollout_select(
@@ -169,12 +159,19 @@ def check(conn: sqlite3.Connection, path: Path) -> list[str]:
 
 def _nonfinite_ok_rows(conn: sqlite3.Connection, restore: str) -> list[str]:
     bad: dict[int, int] = {}
-    cursor = conn.execute("SELECT run_id, objective, features_json FROM rollouts WHERE status = 'ok'")
-    while rows := cursor.fetchmany(20_000):
-        feats = json.loads("[" + ",".join(r[2] for r in rows) + "]")
-        for (rid, objective, _), row in zip(rows, feats, strict=True):
-            finite = objective is not None and math.isfinite(objective)
-            if not finite or any(v is None or not math.isfinite(v) for v in row.values()):
+    for scenario_hash, columns in conn.execute("SELECT hash, columns_json FROM scenarios").fetchall():
+        width = len(json.loads(columns)["features"])
+        cursor = conn.execute(
+            "SELECT ro.run_id, ro.objective, ro.features FROM rollouts ro JOIN runs r ON r.id = ro.run_id"
+            " WHERE r.scenario_hash = ? AND ro.status = 'ok'", (scenario_hash,))
+        while rows := cursor.fetchmany(50_000):
+            run_ids = np.array([r[0] for r in rows])
+            objective = np.array([r[1] for r in rows], dtype=float)
+            nan_row = np.full(width, np.nan).astype("<f8").tobytes()  # a malformed row counts as damaged
+            blobs = [r[2] if isinstance(r[2], bytes) and len(r[2]) == 8 * width else nan_row for r in rows]
+            features = np.frombuffer(b"".join(blobs), dtype="<f8").reshape(len(rows), width)
+            broken = ~(np.isfinite(objective) & np.isfinite(features).all(axis=1))
+            for rid in run_ids[broken].tolist():
                 bad[rid] = bad.get(rid, 0) + 1
     return [f"run {rid} has {n} rollout(s) with status ok but a missing or non-finite feature or objective; {restore}"
             for rid, n in sorted(bad.items())]

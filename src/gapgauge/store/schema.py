@@ -3,6 +3,14 @@
 The schema is the ``Store`` data contract of DEVELOPERS.md. ``meta`` holds ``schema_version`` and an
 ``application`` marker, so a SQLite file that is not ours is told apart from an old store of ours.
 
+A rollout's parameters, physics draw and features are float64 little-endian BLOBs (``(dim,)``,
+``(k,)``, ``(nfeatures,)``; NaN kept as NaN): reading 10^5 rollouts is then one ``numpy.frombuffer``
+per column instead of parsing three million decimal numbers (JSON text took 3 to 4 s for 10^5 rows
+on the shared two-core machine, BLOBs well under one; see benchmarks/sweep_throughput.py). Their
+column names are frozen per scenario version in ``scenarios.columns_json``
+(``{"parameters": [...], "physics": [...], "features": [...]}``), so a later change of defaults can
+never reinterpret stored numbers.
+
 Migrations: ``MIGRATIONS[v]`` takes a connection inside an open write transaction from version ``v``
 to ``v + 1``. Opening an older store runs them in order after a backup copy ``<store>.v<old>.bak``
 has been written (see :func:`gapgauge.store.db.Store`); a newer store is refused.
@@ -32,6 +40,7 @@ CREATE TABLE IF NOT EXISTS scenarios (
     name TEXT NOT NULL,
     path TEXT NOT NULL,
     raw_json TEXT NOT NULL,
+    columns_json TEXT NOT NULL,
     created_at TEXT NOT NULL
 );
 CREATE TABLE IF NOT EXISTS runs (
@@ -50,12 +59,12 @@ CREATE TABLE IF NOT EXISTS runs (
 CREATE TABLE IF NOT EXISTS rollouts (
     run_id INTEGER NOT NULL REFERENCES runs(id),
     idx INTEGER NOT NULL,
-    params_json TEXT NOT NULL,
-    physics_json TEXT NOT NULL,
+    params BLOB NOT NULL,
+    physics BLOB NOT NULL,
     status TEXT NOT NULL CHECK (status IN ('ok', 'fell', 'diverged')),
     reason TEXT NOT NULL DEFAULT '',
     objective REAL,
-    features_json TEXT NOT NULL,
+    features BLOB NOT NULL,
     UNIQUE (run_id, idx)
 );
 CREATE INDEX IF NOT EXISTS rollouts_status ON rollouts(run_id, status);
