@@ -44,8 +44,9 @@ def make_store(path: Path, n_trials: int, seed: int = 0) -> tuple[object, Store]
     objective = sim_objective(U) + 0.02 * rng.normal(size=N_SIM)
     objective[:20] = scenario.objective.fall_value
     objective[20:25] = np.nan
-    features = {"margin_of_stability": margin(U) + 0.005 * rng.normal(size=N_SIM),
-                "fell": (status == "fell").astype(float)}
+    features = {name: np.zeros(N_SIM) for name in scenario.features.names}  # the store wants them all
+    features.update({"margin_of_stability": margin(U) + 0.005 * rng.normal(size=N_SIM),
+                     "fell": (status == "fell").astype(float)})
     features["margin_of_stability"][20:25] = np.nan
     run = store.start_run("sweep", scenario, seed=seed, design="sobol", planned=N_SIM, nominal=False)
     store.write_rollouts(run, RolloutBatch(

@@ -205,9 +205,24 @@ def _log_probability(q: np.ndarray) -> np.ndarray:
     return np.log(np.clip(q, np.exp(LOG_FLOOR / 10), 1.0))
 
 
+def log_constrained_improvement(
+    mean: np.ndarray, sd: np.ndarray, best: float | np.ndarray, fall_risk: np.ndarray
+) -> np.ndarray:
+    """``log(EI(x) (1 - P(fall | x)))`` (Gardner et al. 2014) on given predictions: the score that
+    :func:`maximise_acquisition` maximises, before its penalty for points over the fall-risk limit.
+
+    ``mean``, ``sd`` (latent) in objective units and ``fall_risk`` probabilities, broadcastable to one
+    shape (e.g. ``(draws x n)``); ``best`` the incumbent, a scalar or broadcastable (e.g. ``(draws x 1)``).
+    Used by :mod:`gapgauge.compare.budget` to run the same policy over a fixed candidate set.
+    """
+    log_ei = np.maximum(log_expected_improvement(mean, sd, best), LOG_FLOOR)
+    return log_ei + _log_probability(1.0 - np.asarray(fall_risk, dtype=float))
+
+
 __all__ = [
     "AcquisitionResult",
     "expected_improvement",
+    "log_constrained_improvement",
     "log_expected_improvement",
     "maximise_acquisition",
 ]

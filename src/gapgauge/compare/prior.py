@@ -83,9 +83,7 @@ class PriorFit:
         U = self.scenario.to_unit(np.atleast_2d(np.asarray(X, dtype=float)))
         return self.objective_model.predict(U, return_std=return_std)
 
-    def predict_simulation(
-        self, X: np.ndarray, return_std: bool = True
-    ) -> np.ndarray | tuple[np.ndarray, np.ndarray]:
+    def predict_simulation(self, X: np.ndarray, return_std: bool = True) -> np.ndarray | tuple[np.ndarray, np.ndarray]:
         """The simulation level alone at ``X (n x dim)`` (scenario units)."""
         return self.objective_model.predict_low(self.scenario.to_unit(X), return_std=return_std)
 
@@ -118,7 +116,6 @@ class PriorFit:
             "model_id": self.model_id,
         }
 
-
     def write_json(self, path: str | Path) -> None:
         """Write :meth:`summary` as JSON to ``path``."""
         write_json(path, self.summary())
@@ -141,6 +138,7 @@ class _Data:
     y_sim: np.ndarray
     X_sim_margin: np.ndarray
     margin_sim: np.ndarray
+    fell_sim_margin: np.ndarray
     X_hw: np.ndarray
     y_hw: np.ndarray
     X_hw_margin: np.ndarray
@@ -209,6 +207,7 @@ def _read(scenario: Scenario, store: Any) -> _Data:
         y_sim=objective[ok],
         X_sim_margin=scenario.to_unit(params[has_margin]),
         margin_sim=margin[has_margin],
+        fell_sim_margin=(status == "fell")[has_margin],
         X_hw=scenario.to_unit(np.array(X_hw).reshape(-1, dim)),
         y_hw=np.array(y_hw),
         X_hw_margin=scenario.to_unit(np.array(X_hm).reshape(-1, dim)),
@@ -316,16 +315,14 @@ def fit_prior(
     if data.margin_sim.size:
         say(f"fall model: {data.margin_sim.size} simulated margins, {data.margin_hw.size} hardware margins")
         fall = FallModel(max_inducing=max_inducing, random_state=rng).fit(
-            data.X_sim_margin, data.margin_sim, data.X_hw_margin, data.margin_hw
+            data.X_sim_margin, data.margin_sim, data.X_hw_margin, data.margin_hw, fell_low=data.fell_sim_margin
         )
     else:
         data.notes.append(f"no {MARGIN} in the store: proposals carry no fall risk")
     say("leave-one-out over hardware trials")
     loo = leave_one_out(objective, data.X_hw, data.y_hw, seed)
     if data.y_hw.size == 0:
-        data.notes.append(
-            "no hardware trials yet: the prior is the simulation level plus the discrepancy prior"
-        )
+        data.notes.append("no hardware trials yet: the prior is the simulation level plus the discrepancy prior")
     fit = PriorFit(
         scenario=scenario,
         objective_model=objective,
@@ -378,8 +375,7 @@ def load_prior(scenario: Scenario, store: Any) -> PriorFit:
     loaded = store.load_model(MODEL_KIND, scenario.content_hash)
     if loaded is None:
         raise ModelError(
-            f"no fitted prior for scenario {scenario.name!r} in the store; run "
-            f"`gapgauge prior {scenario.path}` first"
+            f"no fitted prior for scenario {scenario.name!r} in the store; run `gapgauge prior {scenario.path}` first"
         )
     params, arrays = loaded
     arrays = arrays or {}
@@ -393,9 +389,7 @@ def load_prior(scenario: Scenario, store: Any) -> PriorFit:
     )
     fall = None
     if params.get("fall") is not None:
-        fall = FallModel.from_state(
-            params["fall"], {k[5:]: v for k, v in arrays.items() if k.startswith("fall.")}
-        )
+        fall = FallModel.from_state(params["fall"], {k[5:]: v for k, v in arrays.items() if k.startswith("fall.")})
     s = params["summary"]
     return PriorFit(
         scenario=scenario,
