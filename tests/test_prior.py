@@ -47,6 +47,8 @@ def make_store(path: Path, n_trials: int, seed: int = 0) -> tuple[object, Store]
     features = {name: np.zeros(N_SIM) for name in scenario.features.names}  # the store wants them all
     features.update({"margin_of_stability": margin(U) + 0.005 * rng.normal(size=N_SIM),
                      "fell": (status == "fell").astype(float)})
+    # a body that fell ends far outside its base of support (push_recovery sweeps: about -1 m)
+    features["margin_of_stability"][:20] = -0.8 + 0.1 * rng.normal(size=20)
     features["margin_of_stability"][20:25] = np.nan
     run = store.start_run("sweep", scenario, seed=seed, design="sobol", planned=N_SIM, nominal=False)
     store.write_rollouts(run, RolloutBatch(

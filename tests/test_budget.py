@@ -1,0 +1,169 @@
+"""The trial budget (gapgauge.compare.budget): its Monte Carlo machinery against outside references."""
+
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import pytest
+from scipy.stats import qmc
+from sklearn.gaussian_process import GaussianProcessRegressor
+from sklearn.gaussian_process.kernels import ConstantKernel, Matern
+
+from gapgauge.compare.budget import (
+    Belief,
+    _Conditioner,
+    budget_at,
+    budget_from_beliefs,
+    draw_targets,
+    hardware_only_belief,
+    multifidelity_belief,
+    posterior_covariance,
+    reach_curve,
+    run_policy,
+)
+from gapgauge.compare.gp import ExactGP
+from gapgauge.compare.kernels import Matern52
+from gapgauge.compare.multifidelity import MultiFidelityGP
+
+
+def branin(U: np.ndarray) -> np.ndarray:
+    """Branin (Dixon and Szego 1978) on the unit square mapped to x1 in [-5, 10], x2 in [0, 15]."""
+    x1, x2 = -5.0 + 15.0 * U[:, 0], 15.0 * U[:, 1]
+    b, c = 5.1 / (4 * np.pi**2), 5.0 / np.pi
+    return (x2 - b * x1**2 + c * x1 - 6.0) ** 2 + 10.0 * (1 - 1 / (8 * np.pi)) * np.cos(x1) + 10.0
+
+
+def sobol(n_log2: int, dim: int, seed: int) -> np.ndarray:
+    return qmc.Sobol(dim, scramble=True, seed=np.random.default_rng(seed)).random_base2(n_log2)
+
+
+def matern_belief(X: np.ndarray, length_scale: float, noise_var: float, mean: float = 0.0) -> Belief:
+    return Belief(np.full(X.shape[0], mean), Matern52(1.0, length_scale)(X), noise_var)
+
+
+def test_random_search_reach_curve_matches_the_geometric_formula():
+    # random search with replacement reaches a target met by a fraction q of the candidates by trial
+    # n with probability 1 - (1 - q)^n exactly (geometric distribution); Branin as the surface, q
+    # computed directly from it
+    U = sobol(8, 2, 1)
+    f = branin(U)
+    target = draw_targets(f[None], None, 0.95, None)[0]
+    q = float(np.mean(f <= target))
+    assert 0.0 < q < 0.2
+    draws, T = 4000, 15
+    truth = np.tile(f, (draws, 1))
+    runs = run_policy(truth, None, np.full(draws, target), matern_belief(U, 0.3, 1e-2), None,
+                      max_trials=T, objective_noise_sd=0.0, rng=3, policy="random")
+    curve = reach_curve(runs.trials_to_target, T)
+    exact = 1.0 - (1.0 - q) ** np.arange(1, T + 1)
+    tolerance = 4.0 * np.sqrt(exact * (1 - exact) / draws) + 1e-9
+    assert np.all(np.abs(curve - exact) <= tolerance)
+
+
+def test_target_is_the_stated_fraction_between_median_and_best_of_standing_candidates():
+    f = np.array([[5.0, 1.0, 3.0, 4.0, 2.0, 0.0]])
+    margin = np.array([[1.0, 1.0, 1.0, 1.0, 1.0, -1.0]])  # the 0.0 candidate falls: not achievable
+    # standing values 5, 1, 3, 4, 2: median 3, best 1; 95% of the way: 3 - 0.95 * 2 = 1.1
+    assert draw_targets(f, margin, 0.95, None)[0] == pytest.approx(1.1)
+    assert draw_targets(f, margin, 0.95, 2.5)[0] == 2.5
+
+
+def test_budget_is_the_least_trial_count_reaching_the_level():
+    trials = np.array([1, 2, 2, 3, 5, 21, 21, 4, 2, 1])  # 21: not reached within 20
+    curve = reach_curve(trials, 20)
+    assert curve[:5].tolist() == [0.2, 0.5, 0.6, 0.7, 0.8]
+    assert (budget_at(curve, 0.5), budget_at(curve, 0.8), budget_at(curve, 0.95)) == (2, 5, None)
+
+
+def test_sequential_conditioning_matches_scikit_learn_gp_posterior():
+    # conditioning one observation at a time (growing Cholesky factor) equals the batch GP posterior
+    # of scikit-learn's GaussianProcessRegressor with the same fixed kernel and noise
+    X = sobol(6, 2, 2)
+    y_at = np.array([3, 17, 40, 8, 55])
+    y = np.sin(6 * X[y_at, 0]) + X[y_at, 1]
+    ell, noise = 0.35, 0.01
+    cond = _Conditioner(matern_belief(X, ell, noise), draws=1, max_observations=len(y_at))
+    for i, value in zip(y_at, y, strict=True):
+        cond.observe(np.array([i]), np.array([value]), np.array([True]))
+    sk = GaussianProcessRegressor(ConstantKernel(1.0, "fixed") * Matern(ell, "fixed", nu=2.5), alpha=noise,
+                                  optimizer=None).fit(X[y_at], y)
+    mean, sd = sk.predict(X, return_std=True)
+    np.testing.assert_allclose(cond.mean[0], mean, atol=1e-8)
+    np.testing.assert_allclose(np.sqrt(cond.var[0]), sd, atol=1e-7)
+
+
+def test_exact_gp_posterior_covariance_matches_scikit_learn():
+    rng = np.random.default_rng(4)
+    X, Xs = rng.uniform(size=(12, 3)), rng.uniform(size=(7, 3))
+    y = X @ np.array([1.0, -2.0, 0.5]) + 0.1 * rng.standard_normal(12)
+    ell = np.array([0.4, 0.7, 1.1])
+    gp = ExactGP(Matern52(1.3, ell), 0.02, optimize=False).fit(X, y)
+    sk = GaussianProcessRegressor(ConstantKernel(1.3, "fixed") * Matern(ell, "fixed", nu=2.5), alpha=0.02,
+                                  optimizer=None).fit(X, y)
+    np.testing.assert_allclose(posterior_covariance(gp, Xs), sk.predict(Xs, return_cov=True)[1], atol=1e-9)
+
+
+def test_multifidelity_covariance_agrees_with_its_predictive_sd():
+    # Forrester et al. (2007) functions and their worked design: the covariance built from the fitted
+    # levels has on its diagonal the variance that MultiFidelityGP.predict reports
+    def high(x):
+        return (6 * x - 2) ** 2 * np.sin(12 * x - 4)
+
+    x_low, x_high = np.linspace(0, 1, 11), np.array([0.0, 0.4, 0.6, 1.0])
+    model = MultiFidelityGP(random_state=0).fit(
+        x_low[:, None], 0.5 * high(x_low) + 10 * (x_low - 0.5) - 5, x_high[:, None], high(x_high)
+    )
+    belief, check = multifidelity_belief(model, np.linspace(0, 1, 41)[:, None])
+    assert check < 1e-6
+    assert np.all(np.linalg.eigvalsh(belief.cov) > -1e-8 * np.max(np.diag(belief.cov)))
+
+
+def _one_dimensional_problem(prior_knows: bool, seed: int = 0):
+    x = np.linspace(0, 1, 101)[:, None]
+    f = (x[:, 0] - 0.83) ** 2  # optimum at x = 0.83
+    if prior_knows:  # the prior's mean is the surface itself and it is nearly sure of it
+        belief = Belief(f.copy(), 1e-4 * Matern52(1.0, 0.2)(x), 1e-6)
+    else:
+        belief = hardware_only_belief(x, 0, np.zeros(0), (float(np.mean(f)), float(np.std(f))), seed)
+    return x, f, belief
+
+
+def test_prior_that_favours_the_optimum_reaches_the_target_sooner_than_a_cold_start():
+    x, f, prior = _one_dimensional_problem(True)
+    _, _, cold = _one_dimensional_problem(False)
+    target = draw_targets(f[None], None, 0.99, None)
+    kwargs = dict(max_trials=20, objective_noise_sd=1e-3, rng=0)
+    with_prior = run_policy(f[None], None, target, prior, None, **kwargs).trials_to_target[0]
+    cold_start = run_policy(f[None], None, target, cold, None, **kwargs).trials_to_target[0]
+    assert with_prior == 1
+    assert cold_start > with_prior
+
+
+def _synthetic_plan(seed: int, draws: int = 48):
+    U = sobol(7, 2, 5)
+    mean = branin(U) / 50.0
+    prior = Belief(mean, 0.05 * Matern52(1.0, 0.3)(U), 1e-3)
+    margin = Belief(0.3 - 0.4 * U[:, 0] * U[:, 1], 0.01 * Matern52(1.0, 0.4)(U), 1e-4)
+    cold = hardware_only_belief(U, 0, np.zeros(0), (float(np.mean(mean)), float(np.std(mean))), 1)
+    cold_margin = hardware_only_belief(U, 0, np.zeros(0), (0.2, 0.2), 1)
+    return budget_from_beliefs(prior, margin, cold, cold_margin, objective_noise_sd=0.03, margin_noise_sd=0.01,
+                               max_trials=12, draws=draws, seed=seed)
+
+
+def test_budget_is_reproducible_from_its_seed():
+    a, b, c = _synthetic_plan(7).to_json(), _synthetic_plan(7).to_json(), _synthetic_plan(8).to_json()
+    assert a == b
+    assert a["with_prior"]["trials_to_target"] != c["with_prior"]["trials_to_target"]
+
+
+def test_budget_json_has_the_promised_keys_and_ordered_percentiles():
+    plan = _synthetic_plan(0, draws=64).to_json()
+    data = json.loads(json.dumps(plan))  # plain JSON, no NaN or numpy types
+    for arm in ("with_prior", "cold_start"):
+        assert {"p50", "p80", "p95", "expected_falls"} <= set(data[arm])
+        p = [data[arm][k] if data[arm][k] is not None else np.inf for k in ("p50", "p80", "p95")]
+        assert p[0] <= p[1] <= p[2]
+    assert [c["trial"] for c in data["curve"]] == list(range(1, 13))
+    assert {"seed", "draws", "max_trials", "target"} <= set(data)
+    assert data["sentence"].startswith("Book ")

@@ -1,0 +1,57 @@
+"""The fall model's threshold on the margin of stability and its fall probability."""
+
+from __future__ import annotations
+
+import numpy as np
+from scipy.special import ndtr
+from sklearn.metrics import roc_curve
+
+from gapgauge.compare.fall import FallModel, youden_threshold
+
+
+def test_youden_threshold_reaches_the_best_j_of_scikit_learns_roc_curve() -> None:
+    rng = np.random.default_rng(3)
+    stood = rng.normal(0.02, 0.04, 400)
+    fell = rng.normal(-0.3, 0.2, 100)
+    margin = np.concatenate([stood, fell])
+    outcome = np.concatenate([np.zeros(400, bool), np.ones(100, bool)])
+    cut = youden_threshold(margin, outcome)
+    # Reference: scikit-learn's ROC of the score -margin; Youden's J = max(tpr - fpr) (Youden 1950).
+    fpr, tpr, _ = roc_curve(outcome, -margin)
+    best_j = np.max(tpr - fpr)
+    called = margin < cut
+    j = called[outcome].mean() - called[~outcome].mean()
+    assert j == pytest_approx(best_j)
+    # the cut lies between the two clusters, below Hof's 0 (a body may dip below 0 and recover)
+    assert -0.3 < cut < 0.02
+
+
+def pytest_approx(value: float):
+    import pytest
+
+    return pytest.approx(value, abs=1e-12)
+
+
+def test_youden_threshold_is_hofs_zero_when_only_one_outcome_occurs() -> None:
+    margin = np.linspace(-0.1, 0.1, 20)
+    assert youden_threshold(margin, np.zeros(20, bool)) == 0.0
+    assert youden_threshold(margin, np.ones(20, bool)) == 0.0
+
+
+def test_fall_probability_is_the_gaussian_tail_below_the_threshold() -> None:
+    rng = np.random.default_rng(0)
+    X = rng.random((300, 2))
+    # the margin falls linearly along x0; bodies with margin below -0.05 fell
+    margin = 0.1 - 0.3 * X[:, 0] + rng.normal(0, 0.01, 300)
+    fell = margin < -0.05
+    model = FallModel(random_state=0).fit(X, margin, np.empty((0, 2)), np.empty(0), fell_low=fell)
+    assert -0.07 < model.threshold_ < -0.03
+    Xq = np.array([[0.05, 0.5], [0.95, 0.5]])
+    mean, sd = model.predict(Xq, return_std=True, observation=True)
+    # P(fall) = Phi((threshold - mu) / sd) (Gaussian predictive, definition of the model)
+    expected = ndtr((model.threshold_ - mean) / sd)
+    assert np.allclose(model.fall_probability(Xq), expected)
+    p = model.fall_probability(Xq)
+    # with no hardware trial the discrepancy prior keeps doubt (and the floor caps how deep a fall
+    # reads), but each end lies clearly on its own side
+    assert p[0] < 0.2 and p[1] > 0.6
