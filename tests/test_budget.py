@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -167,3 +168,33 @@ def test_budget_json_has_the_promised_keys_and_ordered_percentiles():
     assert [c["trial"] for c in data["curve"]] == list(range(1, 13))
     assert {"seed", "draws", "max_trials", "target"} <= set(data)
     assert data["sentence"].startswith("Book ")
+
+
+@pytest.mark.slow
+def test_budget_command_on_a_small_real_store_prints_the_booking_and_stores_the_json(tmp_path):
+    from click.testing import CliRunner
+
+    from gapgauge import load_scenario
+    from gapgauge.cli import main
+    from gapgauge.sim.standin import run_standin
+    from gapgauge.sim.sweep import sweep
+    from gapgauge.store import Store
+    from gapgauge.store.ingest import ingest
+
+    root = Path(__file__).resolve().parents[1]
+    path = root / "scenarios" / "push_recovery.toml"
+    scenario = load_scenario(path)
+    store = Store(tmp_path / "s.sqlite")
+    sweep(scenario, 160, store=store, seed=0, workers=2, progress=False)
+    logs = run_standin(scenario, root / "scenarios" / "standin" / "close.toml", design=3, out_dir=tmp_path, seed=0)
+    ingest(scenario, logs, store=store, matches=2, seed=0, progress=False)
+    store.close()
+    out = tmp_path / "budget.json"
+    run = CliRunner().invoke(main, ["budget", str(path), "--store", str(tmp_path / "s.sqlite"), "--draws", "16",
+                                    "--max-trials", "6", "--json", str(out)])
+    assert run.exit_code == 0, run.output
+    assert "Book " in run.output and "without it." in run.output
+    data = json.loads(out.read_text())
+    assert data["draws"] == 16 and len(data["curve"]) == 6
+    stored, _ = Store(tmp_path / "s.sqlite", create=False).load_model("budget", scenario.content_hash)
+    assert stored["with_prior"] == data["with_prior"]

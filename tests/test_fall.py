@@ -3,7 +3,9 @@
 from __future__ import annotations
 
 import numpy as np
+from scipy.integrate import quad
 from scipy.special import ndtr
+from scipy.stats import norm
 from sklearn.metrics import roc_curve
 
 from gapgauge.compare.fall import FallModel, youden_threshold
@@ -47,10 +49,12 @@ def test_fall_probability_is_the_gaussian_tail_below_the_threshold() -> None:
     model = FallModel(random_state=0).fit(X, margin, np.empty((0, 2)), np.empty(0), fell_low=fell)
     assert -0.07 < model.threshold_ < -0.03
     Xq = np.array([[0.05, 0.5], [0.95, 0.5]])
-    mean, sd = model.predict(Xq, return_std=True, observation=True)
-    # P(fall) = Phi((threshold - mu) / sd) (Gaussian predictive, definition of the model)
-    expected = ndtr((model.threshold_ - mean) / sd)
-    assert np.allclose(model.fall_probability(Xq), expected)
+    mean, sd = model.predict(Xq, return_std=True)
+    # P(fall) = E[Phi(a + b (threshold - f))], f ~ N(mean, sd^2): checked by direct quadrature
+    a, b = model.calibration_
+    expected = [quad(lambda f, m=m, s=s: ndtr(a + b * (model.threshold_ - f)) * norm.pdf(f, m, s),
+                     m - 12 * s, m + 12 * s, points=[model.threshold_])[0] for m, s in zip(mean, sd, strict=True)]
+    assert np.allclose(model.fall_probability(Xq), expected, atol=1e-7)
     p = model.fall_probability(Xq)
     # with no hardware trial the discrepancy prior keeps doubt (and the floor caps how deep a fall
     # reads), but each end lies clearly on its own side

@@ -57,8 +57,8 @@ def main() -> None:
 
 @main.command("sweep")
 @click.argument("scenario", type=click.Path(dir_okay=False))
-@click.option("--rollouts", default=2000, show_default=True, type=click.IntRange(1),
-              help="Planned number of rollouts (the design size).")
+@click.option("--rollouts", default=2000, show_default=True, type=click.IntRange(1, 1_000_000),
+              help="Planned number of rollouts (the design size); more in further runs with other seeds.")
 @click.option("--design", default="sobol", show_default=True, type=click.Choice(["sobol", "lhs", "random"]),
               help="Space-filling design over the parameter bounds.")
 @click.option("--seed", default=0, show_default=True, type=click.IntRange(0, 2**63 - 1),
@@ -420,6 +420,76 @@ def propose_command(scenario: str, store_path: str, count: int, max_fall_risk: f
 
 
 # ---- budget and calibrate (compare/budget, compare/calibration) ----------------------------
+
+
+@main.command("budget")
+@click.argument("scenario", type=click.Path(dir_okay=False))
+@store_option
+@click.option("--target", "target_fraction", default=0.95, show_default=True,
+              type=click.FloatRange(0.0, 1.0, min_open=True),
+              help="Target: this fraction of the way from a random safe parameter set (median) to the best.")
+@click.option("--target-value", default=None, type=float,
+              help="Target: this objective value instead (objective units, lower is better).")
+@click.option("--confidence", default=0.8, show_default=True, type=click.FloatRange(0.0, 1.0, min_open=True,
+              max_open=True), help="Probability of reaching the target within the booked trials.")
+@click.option("--max-trials", default=20, show_default=True, type=click.IntRange(1, 500),
+              help="Trials per simulated tuning run.")
+@click.option("--draws", default=128, show_default=True, type=click.IntRange(1, 100_000),
+              help="Plausible hardware response surfaces drawn from the posterior.")
+@click.option("--max-fall-risk", default=0.05, show_default=True,
+              type=click.FloatRange(0.0, 1.0, min_open=True), help="Fall-risk limit of the policy (as propose).")
+@click.option("--seed", default=0, show_default=True, type=click.IntRange(0),
+              help="Seed of the candidates, the draws and the observation noise.")
+@json_option
+def budget_command(scenario: str, store_path: str, target_fraction: float, target_value: float | None,
+                   confidence: float, max_trials: int, draws: int, max_fall_risk: float, seed: int,
+                   json_path: str | None) -> None:
+    """How many hardware trials to book: Monte Carlo of the propose policy, with and without the prior."""
+    from rich.markup import escape
+    from rich.table import Table
+
+    from .compare.budget import book_text, plan_budget
+    from .scenario import load_scenario
+    from .store import Store
+
+    sc = load_scenario(scenario)
+    store = Store(store_path, create=False)
+    try:
+        plan = plan_budget(sc, store, target_fraction=target_fraction, target_value=target_value,
+                           confidence=confidence, max_trials=max_trials, draws=draws, seed=seed,
+                           max_fall_risk=max_fall_risk, progress=True)
+    finally:
+        store.close()
+    level = f"P{round(100 * confidence)}"
+    table = Table(title=f"budget: {escape(sc.name)}, trials to reach the target ({plan.draws} draws, "
+                  f"up to {plan.max_trials} trials)", title_justify="left")
+    keys = ["p50", "p80", "p95"] + ([] if level in ("P50", "P80", "P95") else ["book"])
+    for column in ("", "P50", "P80", "P95", level)[: len(keys) + 1] + ("reached", "expected falls"):
+        table.add_column(column, justify="right")
+    for label, arm in (("with the simulation prior", plan.with_prior), ("cold start (no prior)", plan.cold_start)):
+        table.add_row(label, *[book_text(arm[k], plan.max_trials) for k in keys],
+                      f"{100 * arm['reached_fraction']:.0f}%", f"{arm['expected_falls']:.2f}")
+    console.print(table)
+    if plan.saving is not None:
+        console.print(f"saving (cold P80 - prior P80): {plan.saving} trial(s)")
+    elif plan.saving_at_least is not None:
+        console.print(f"saving (cold P80 - prior P80): at least {plan.saving_at_least} trial(s)")
+    marks = sorted({n for n in (1, 2, 3, 5, 8, 10, 15, 20, 30, 50, plan.max_trials) if n <= plan.max_trials})
+    curve = Table(title="P(target reached by trial n)", title_justify="left")
+    curve.add_column("n", justify="right")
+    for n in marks:
+        curve.add_column(str(n), justify="right")
+    for key, label in (("with_prior", "with prior"), ("cold_start", "cold start")):
+        curve.add_row(label, *[f"{plan.curve[n - 1][key]:.2f}" for n in marks])
+    console.print(curve)
+    console.print(f"target: {escape(plan.target['definition'])}; fall-risk limit {plan.max_fall_risk:g}; "
+                  f"{plan.n_hardware} hardware trial(s) known; seed {plan.seed}; {plan.seconds:.1f} s")
+    for note in plan.notes:
+        console.print(f"note: {escape(note)}")
+    console.print(f"[bold]{escape(plan.sentence)}[/]")
+    if json_path:
+        plan.write_json(json_path)
+        console.print(f"JSON: {escape(json_path)}")
 
 
 @main.command("calibrate")

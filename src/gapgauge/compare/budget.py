@@ -22,8 +22,9 @@ each tuned by the proposal policy of :mod:`gapgauge.compare.propose`:
    candidate set, R&W eq. 2.19, by a growing Cholesky factor), not refitted. A trial's outcome is the
    draw observed with the hardware noise: it falls when the draw's margin is below 0, and then only its
    margin is observed (a fallen trial's objective is not a measurement, as in ``fit_prior``). When no
-   candidate meets the fall-risk limit (``propose`` would stop and say so), the simulated user takes
-   the candidate of least modelled risk; such steps are counted in ``infeasible_steps``.
+   candidate meets the fall-risk limit (``propose`` would stop and say so), the simulated user lifts
+   the limit for that trial (EI x P(no fall) unconstrained, as with a higher ``--max-fall-risk``);
+   such trials are counted in ``infeasible_steps`` and reported in the notes.
 4. Target, per draw: ``median - fraction (median - best)`` over the candidates on which the draw
    stands (margin >= 0), the median standing for "a random safe parameter set" and the best for the
    best achievable; or an absolute ``target_value``. Reached at the first trial that stands with the
@@ -335,8 +336,9 @@ def _choose(
     among = np.where(feasible | none_feasible[:, None], mean, np.inf).min(axis=1)
     incumbent = np.where(np.isfinite(at_trials), at_trials, among)
     score = log_constrained_improvement(mean, sd, incumbent[:, None], risk)
-    score = np.where(feasible, score, -np.inf)
-    score[none_feasible] = -risk[none_feasible]
+    # with no candidate under the limit, EI x P(no fall) unconstrained (as if the user raised
+    # --max-fall-risk): taking the least risky candidate instead repeats one trial and learns nothing
+    score = np.where(feasible | none_feasible[:, None], score, -np.inf)
     return np.argmax(score, axis=1), none_feasible
 
 
@@ -553,6 +555,13 @@ def budget_from_beliefs(
     unreachable = int(np.sum(~np.isfinite(target)))
     if unreachable:
         notes.append(f"{unreachable} of {draws} draws fall on every candidate: counted as never reached")
+    for name, runs in (("with the prior", prior_runs), ("cold start", cold_runs)):
+        share = runs.infeasible_steps / max(draws * max_trials, 1)
+        if share > 0.05:
+            notes.append(
+                f"{name}: in {100 * share:.0f}% of simulated trials no candidate met the fall-risk limit "
+                f"{max_fall_risk:g} (gapgauge propose would stop and say so); there the limit was lifted"
+            )
     target_info = {
         "kind": "value" if target_value is not None else "fraction",
         "fraction": None if target_value is not None else float(target_fraction),

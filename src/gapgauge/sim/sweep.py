@@ -36,6 +36,9 @@ from .physics import draw_physics
 #: moves smoothly, an interruption loses little, and per-chunk costs stay small (see benchmarks/).
 DEFAULT_CHUNK = 256
 MAX_SEED = 2**63 - 1  # SQLite INTEGER
+#: the whole design is held in memory (rollouts x dim x 8 bytes: 104 MB at 10^6 x 13), so a run is capped;
+#: more rollouts go in further runs with other seeds
+MAX_ROLLOUTS = 1_000_000
 
 
 @dataclass
@@ -143,8 +146,9 @@ def _check_arguments(rollouts: Any, design: str, seed: Any, workers: Any, chunk_
     def whole(value: Any) -> bool:
         return isinstance(value, (int, np.integer)) and not isinstance(value, bool)
 
-    if not whole(rollouts) or rollouts < 1:
-        raise GapgaugeError(f"rollouts: must be a whole number of at least 1, got {rollouts!r}; e.g. --rollouts 2000")
+    if not whole(rollouts) or not 1 <= rollouts <= MAX_ROLLOUTS:
+        raise GapgaugeError(f"rollouts: must be a whole number from 1 to {MAX_ROLLOUTS:,}, got {rollouts!r}; "
+                            "for more, run further sweeps with other seeds")
     if design not in DESIGNS:
         raise GapgaugeError(f"design: unknown design {design!r}; use one of {', '.join(DESIGNS)}")
     if not whole(seed) or not 0 <= seed <= MAX_SEED:

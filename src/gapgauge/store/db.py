@@ -18,7 +18,7 @@ from collections.abc import Callable, Iterable, Sequence
 from dataclasses import dataclass
 from datetime import datetime, timezone
 from pathlib import Path
-from typing import Any, TypeVar
+from typing import TYPE_CHECKING, Any, TypeVar
 
 import numpy as np
 
@@ -26,6 +26,10 @@ from .. import __version__
 from ..errors import StoreError
 from ..records import RolloutBatch, TrialRecord
 from . import codec, queries, schema
+
+if TYPE_CHECKING:
+    from ..scenario import Scenario
+    from ..trajectory import Trajectory
 
 T = TypeVar("T")
 
@@ -191,10 +195,18 @@ class Store:
                             f"{self.path}: the store stayed locked by another process; "
                             "wait for it to finish or check no stuck process holds the file"
                         ) from None
-                    raise
+                    raise self._damaged(exc) from None
                 time.sleep(wait)
                 wait *= 2
+            except sqlite3.DatabaseError as exc:
+                if type(exc) is not sqlite3.DatabaseError:  # IntegrityError, ProgrammingError: our bugs
+                    raise
+                raise self._damaged(exc) from None
         raise AssertionError("unreachable")
+
+    def _damaged(self, exc: sqlite3.Error) -> StoreError:
+        return StoreError(f"{self.path}: SQLite cannot use the store ({exc}); run `gapgauge store check --store "
+                          f"{self.path}` and restore the file from a backup if it reports damage")
 
     def _write(self, body: Callable[[sqlite3.Connection], T]) -> T:
         """Run ``body(conn)`` in one write transaction (retried as a whole when locked)."""
@@ -216,7 +228,7 @@ class Store:
         return self._retry(lambda: self._conn.execute(sql, args).fetchall())
 
     # ---- scenarios and runs ----------------------------------------------------------------
-    def add_scenario(self, scenario) -> str:
+    def add_scenario(self, scenario: Scenario) -> str:
         """Store a scenario version (name, path, raw JSON) under its content hash; returns the hash."""
         raw = codec.json.dumps(scenario.raw, default=str)
         columns = codec.dumps({"parameters": scenario.parameter_names,
@@ -230,7 +242,7 @@ class Store:
         return scenario.content_hash
 
     def start_run(
-        self, kind: str, scenario, *, seed: int, design: str, planned: int, nominal: bool,
+        self, kind: str, scenario: Scenario, *, seed: int, design: str, planned: int, nominal: bool,
         config: dict | None = None,
     ) -> int:
         """Get or create the run with these settings (so the same command resumes); returns its id."""
@@ -384,7 +396,7 @@ class Store:
                           (scenario_hash,))
         return [queries.trial_record(r) for r in rows]
 
-    def trial_series(self, trial_id: int):
+    def trial_series(self, trial_id: int) -> Trajectory | None:
         """The stored resampled series (a :class:`~gapgauge.trajectory.Trajectory`) of a trial, or None."""
         rows = self._read("SELECT series_npz FROM trials WHERE id = ?", (int(trial_id),))
         if not rows:
@@ -438,7 +450,12 @@ class Store:
 
     def check(self) -> list[str]:
         """Problems found (empty when healthy): SQLite's integrity check, then ours. Each says what to do."""
-        return self._retry(lambda: queries.check(self._conn, self.path))
+        try:
+            with self._lock:
+                return queries.check(self._conn, self.path)
+        except sqlite3.DatabaseError as exc:  # a store too damaged to check is itself the finding
+            return [f"SQLite cannot read the store ({exc}); restore {self.path} from a backup "
+                    f"(or copy out what `sqlite3 {self.path} .recover` saves)"]
 
     # ---- life cycle ---------------------------------------------------------------------------
     def close(self) -> None:
