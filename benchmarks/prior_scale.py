@@ -70,9 +70,8 @@ def main() -> None:
     parser.add_argument("--seed", type=int, default=0)
     parser.add_argument("--exact-memory-gb", type=float, default=1.5,
                         help="cap on scikit-learn's gradient tensor (n^2 x 15 doubles)")
-    parser.add_argument("--max-fall-risk", type=float, default=0.5,
-                        help="fall-risk limit of the timed propose (push_recovery's modelled P(margin < 0) "
-                             "is above 0.2 everywhere in its safe bounds, so 0.05 finds nothing)")
+    parser.add_argument("--max-fall-risk", type=float, default=0.05,
+                        help="fall-risk limit of the timed propose (the command's default)")
     parser.add_argument("--store", type=Path, default=None, help="store to use (default benchmarks/cache/)")
     args = parser.parse_args()
     n = 5000 if args.quick else args.n
