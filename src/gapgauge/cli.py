@@ -621,11 +621,9 @@ def store_check_command(store_path: str) -> None:
     """Verify the store: SQLite's integrity check plus gapgauge's own. Exit 0 healthy, 1 otherwise."""
     from rich.markup import escape
 
-    from .store import Store
+    from .store.db import check_store
 
-    with Store(store_path, create=False) as store:
-        problems = store.check()
-        resumable = [r for r in store.runs() if r.status != "done"]
+    problems, resumable = check_store(store_path)
     for run in resumable:
         console.print(f"run {run.id} ({run.kind}) holds {run.done:,} of {run.planned:,} rollouts: resumable "
                       "(run the same command again to finish it)")

@@ -460,6 +460,30 @@ _FEATURES: dict[str, Callable[[_Window, FeatureSettings], np.ndarray]] = {
 #: Every feature :func:`compute_features` can compute: the scenario's list plus extras.
 AVAILABLE_FEATURES: tuple[str, ...] = tuple(_FEATURES)
 
+_COP_PARTS = ("heel_force", "toe_force", "heel_x", "toe_x")
+#: channels each feature reads from a trajectory without ``cop_x`` (the centre of pressure is then derived
+#: from the foot forces); ``fell`` also reads ``body_contact`` when the trajectory has it.
+FEATURE_CHANNELS: dict[str, tuple[str, ...]] = {
+    "fell": ("com_z", "trunk_pitch", "body_contact"),
+    "recovery_time": ("com_vx",),
+    "peak_com_excursion": ("com_x",),
+    "cop_path_length": _COP_PARTS,
+    "cop_mean_velocity": _COP_PARTS,
+    "cop_range": _COP_PARTS,
+    "cop_rms_distance": _COP_PARTS,
+    "sway_area": ("com_x", "com_z"),
+    "margin_of_stability": ("com_x", "com_vx", "heel_x", "toe_x"),
+    "peak_joint_torque": tuple(f"{j}_torque" for j in JOINTS),
+    "positive_work": tuple(f"{j}_{kind}" for kind in ("torque", "rate") for j in JOINTS),
+}
+
+
+def channels_needed(names: Sequence[str]) -> tuple[str, ...]:
+    """Channels :func:`compute_features` reads for the features ``names`` from a trajectory without
+    ``cop_x``, each once, in first-use order. A trajectory cut down to them gives the same features
+    (the simulator uses this to low-pass only what is measured)."""
+    return tuple(dict.fromkeys(c for n in names for c in FEATURE_CHANNELS[n]))
+
 
 def compute_features(
     traj: Trajectory, settings: FeatureSettings, names: Sequence[str] | None = None
@@ -527,10 +551,12 @@ def success(features: Mapping[str, np.ndarray], scenario: Scenario) -> np.ndarra
 __all__ = [
     "AVAILABLE_FEATURES",
     "BODY_CONTACT_FORCE",
+    "FEATURE_CHANNELS",
     "CHI2_95_2DOF",
     "GRAVITY",
     "MIN_FOOT_LOAD",
     "MissingChannelError",
+    "channels_needed",
     "compute_features",
     "cop_from_foot_forces",
     "cop_mean_velocity",

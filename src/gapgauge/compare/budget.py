@@ -20,18 +20,20 @@ each tuned by the proposal policy of :mod:`gapgauge.compare.propose`:
    over the same candidates (``propose`` polishes a Sobol candidate with L-BFGS-B); and after each trial
    the model is conditioned on it with its hyperparameters fixed (exact Gaussian conditioning on the
    candidate set, R&W eq. 2.19, by a growing Cholesky factor), not refitted. A trial's outcome is the
-   draw observed with the hardware noise: it falls when the draw's margin is below 0, and then only its
-   margin is observed (a fallen trial's objective is not a measurement, as in ``fit_prior``). When no
-   candidate meets the fall-risk limit (``propose`` would stop and say so), the simulated user lifts
-   the limit for that trial (EI x P(no fall) unconstrained, as with a higher ``--max-fall-risk``);
-   such trials are counted in ``infeasible_steps`` and reported in the notes.
+   draw observed with the hardware noise: it falls with the fall model's chance at the draw's margin
+   (its probit link, :class:`gapgauge.compare.fall.FallModel`; without one, when the margin is below
+   0), and then only its margin is observed (a fallen trial's objective is not a measurement, as in
+   ``fit_prior``). When no candidate meets the fall-risk limit (``propose`` would stop and say so),
+   the simulated user lifts the limit for that trial (EI x P(no fall) unconstrained, as with a higher
+   ``--max-fall-risk``); such trials are counted in ``infeasible_steps`` and reported in the notes.
 4. Target, per draw: ``median - fraction (median - best)`` over the candidates on which the draw
-   stands (margin >= 0), the median standing for "a random safe parameter set" and the best for the
-   best achievable; or an absolute ``target_value``. Reached at the first trial that stands with the
+   stands (fall chance below one half), the median standing for "a random safe parameter set" and the
+   best for the best achievable; or an absolute ``target_value``. Reached at the first trial that stands with the
    draw's (latent) objective at or below the target.
 5. Cold start: the same policy on the same draws with a hardware-only model instead of the prior,
    :func:`gapgauge.compare.prior.hardware_only_gp` (Matern 5/2 ARD, constant mean ~ N(0, 1), weak
-   priors) for the objective and the same form for the margin, fitted (maximum a posteriori) on the
+   priors) for the objective and the same form for the margin (fall risk: the Gaussian tail below
+   Hof's 0, no link, since the link is fitted to simulated falls), fitted (maximum a posteriori) on the
    trials already in the store when there are at least 3, else at its hyperpriors' medians. With
    fewer than 2 trials it borrows only the overall level and spread of the prior's predictions to set
    its output scale (a plain tuner would guess one), never their shape.
@@ -100,6 +102,9 @@ class Belief:
             other ``s - n_known`` are the candidates, in order.
         floor: observed values are raised to this before conditioning (the fall model's winsorising,
             :class:`gapgauge.compare.fall.FallModel`), or None.
+        link: for a margin belief, ``(a, b, threshold)`` of the fall model's probit link
+            ``P(fall | f) = Phi(a + b (threshold - f))``; None: a fall is ``margin < 0`` and its
+            probability the Gaussian tail of a new observation (Hof's threshold).
     """
 
     mean: np.ndarray
@@ -107,6 +112,7 @@ class Belief:
     noise_var: float
     n_known: int = 0
     floor: float | None = None
+    link: tuple[float, float, float] | None = None
 
     @property
     def n_candidates(self) -> int:
@@ -128,7 +134,8 @@ def condition(belief: Belief, index: np.ndarray, y: np.ndarray) -> Belief:
     L = _cholesky_jittered(K, eigen_fallback=False)
     A = solve_triangular(L, C.T, lower=CHOLESKY_LOWER, check_finite=False)
     r = solve_triangular(L, y - belief.mean[index], lower=CHOLESKY_LOWER, check_finite=False)
-    return Belief(belief.mean + A.T @ r, belief.cov - A.T @ A, belief.noise_var, belief.n_known, belief.floor)
+    return Belief(belief.mean + A.T @ r, belief.cov - A.T @ A, belief.noise_var, belief.n_known, belief.floor,
+                  belief.link)
 
 
 class _Conditioner:
@@ -149,6 +156,7 @@ class _Conditioner:
         self.V = np.zeros((draws, max_observations, belief.mean.size))
         self.n = 0
         self.rows = np.arange(draws)
+        self.link = belief.link
 
     def observe(self, index: np.ndarray, y: np.ndarray, mask: np.ndarray) -> None:
         """Observe ``y (draws,)`` at point ``index (draws,)`` in the draws where ``mask (draws,)``."""
@@ -203,6 +211,7 @@ def run_policy(
     rng: np.random.Generator | int = 0,
     policy: str = "ei",
     on_step: Callable[[], None] | None = None,
+    fall_link: tuple[float, float, float] | None = None,
 ) -> PolicyRuns:
     """Tune each draw with the proposal policy for ``max_trials`` trials.
 
@@ -220,6 +229,8 @@ def run_policy(
         policy: ``"ei"``, the policy of ``gapgauge propose``; ``"random"``, a uniformly random candidate
             each trial (with replacement), a reference with a known answer.
         on_step: called after each trial (all draws), for a progress bar.
+        fall_link: ``(a, b, threshold)``: a trial at latent margin ``f`` falls with probability
+            ``Phi(a + b (threshold - f))`` (the fall model's probit link); None: it falls when ``f < 0``.
     """
     if policy not in POLICIES:
         raise ValueError(f"policy must be one of {POLICIES}, got {policy!r}")
@@ -232,6 +243,7 @@ def run_policy(
     z_objective = rng.standard_normal((draws, max_trials))
     z_margin = rng.standard_normal((draws, max_trials))
     random_choice = rng.integers(m, size=(draws, max_trials))
+    u_fall = rng.uniform(size=(draws, max_trials))
     target = np.broadcast_to(np.asarray(target, dtype=float), (draws,))
     out_trials = np.full(draws, max_trials + 1)
     out_falls = np.zeros(draws, dtype=int)
@@ -246,7 +258,7 @@ def run_policy(
                 None if margin_truth is None else np.atleast_2d(margin_truth)[block],
                 target[block], objective_belief, margin_belief, max_trials, objective_noise_sd,
                 margin_noise_sd, max_fall_risk, policy, z_objective[block], z_margin[block],
-                random_choice[block], on_step if start == 0 else None,
+                random_choice[block], on_step if start == 0 else None, fall_link, u_fall[block],
             )
             out_trials[block], out_falls[block], out_chosen[block], out_fell[block] = runs[:4]
             infeasible += runs[4]
@@ -268,6 +280,8 @@ def _run_block(
     z_margin: np.ndarray,
     random_choice: np.ndarray,
     on_step: Callable[[], None] | None,
+    fall_link: tuple[float, float, float] | None,
+    u_fall: np.ndarray,
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, int]:
     draws, m = objective_truth.shape
     rows = np.arange(draws)
@@ -292,7 +306,11 @@ def _run_block(
         fell = np.zeros(draws, dtype=bool)
         if margin_truth is not None:
             truth_margin = margin_truth[rows, choice]
-            fell = truth_margin < 0.0
+            if fall_link is None:
+                fell = truth_margin < 0.0
+            else:
+                a, b, threshold = fall_link
+                fell = u_fall[:, n] < ndtr(a + b * (threshold - truth_margin))
             if margin is not None:
                 y_margin = truth_margin + margin_noise_sd * z_margin[:, n]
                 if margin_belief.floor is not None:
@@ -326,8 +344,12 @@ def _choose(
         risk = np.zeros_like(mean)
     else:
         # as FallModel.fall_probability: P(margin < 0) of a new trial (latent variance plus noise)
-        mu = margin.mean[:, off_m:]
-        risk = ndtr(-mu / np.maximum(np.sqrt(margin.var[:, off_m:] + margin.noise), 1e-12))
+        mu, var = margin.mean[:, off_m:], margin.var[:, off_m:]
+        if margin.link is None:
+            risk = ndtr(-mu / np.maximum(np.sqrt(var + margin.noise), 1e-12))
+        else:  # as FallModel.fall_probability: the probit link integrated over the latent margin
+            a, b, threshold = margin.link
+            risk = ndtr((a + b * (threshold - mu)) / np.sqrt(1.0 + b**2 * var))
     feasible = risk <= max_fall_risk
     none_feasible = ~feasible.any(axis=1)
     # the plug-in incumbent of propose: lowest posterior mean at the trials so far; before any
@@ -353,17 +375,28 @@ def draw_surfaces(mean: np.ndarray, cov: np.ndarray, draws: int, rng: np.random.
 
 
 def draw_targets(
-    objective: np.ndarray, margin: np.ndarray | None, fraction: float | None, value: float | None
+    objective: np.ndarray,
+    margin: np.ndarray | None,
+    fraction: float | None,
+    value: float | None,
+    fall_link: tuple[float, float, float] | None = None,
 ) -> np.ndarray:
     """Per-draw target ``(draws,)``: ``value`` if given, else ``median - fraction (median - best)`` over
-    the candidates on which the draw stands (``margin >= 0``); NaN where nothing stands.
+    the candidates on which the draw stands (``margin >= 0``, or with ``fall_link = (a, b, threshold)``
+    a fall chance below one half, ``a + b (threshold - margin) < 0``); NaN where nothing stands.
 
     ``objective``, ``margin``: ``(draws x m)``; lower objective is better.
     """
     objective = np.atleast_2d(objective)
     if value is not None:
         return np.full(objective.shape[0], float(value))
-    stands = np.ones_like(objective, dtype=bool) if margin is None else np.atleast_2d(margin) >= 0.0
+    if margin is None:
+        stands = np.ones_like(objective, dtype=bool)
+    elif fall_link is None:
+        stands = np.atleast_2d(margin) >= 0.0
+    else:
+        a, b, threshold = fall_link
+        stands = a + b * (threshold - np.atleast_2d(margin)) < 0.0
     masked = np.where(stands, objective, np.nan)
     out = np.full(objective.shape[0], np.nan)
     some = stands.any(axis=1)
@@ -544,10 +577,11 @@ def budget_from_beliefs(
     if margin_belief is not None:
         k_m = margin_belief.n_known
         margin = draw_surfaces(margin_belief.mean[k_m:], margin_belief.cov[k_m:, k_m:], draws, draw_rng)
-    target = draw_targets(objective, margin, target_fraction, target_value)
+    fall_link = None if margin_belief is None else margin_belief.link
+    target = draw_targets(objective, margin, target_fraction, target_value, fall_link)
     common = dict(
         max_trials=max_trials, objective_noise_sd=objective_noise_sd, margin_noise_sd=margin_noise_sd,
-        max_fall_risk=max_fall_risk, on_step=on_step,
+        max_fall_risk=max_fall_risk, on_step=on_step, fall_link=fall_link,
     )
     prior_runs = run_policy(objective, margin, target, objective_belief, margin_belief, rng=prior_rng, **common)
     cold_runs = run_policy(objective, margin, target, cold_objective, cold_margin, rng=cold_rng, **common)
@@ -700,6 +734,9 @@ def beliefs_from_prior(prior: PriorFit, candidates: np.ndarray, seed: int = 0) -
         X_m = np.vstack([fm.X_high_, candidates])
         margin, check_m = multifidelity_belief(fm, X_m, n_known=fm.X_high_.shape[0])
         margin.floor = floor
+        if hasattr(prior.fall_model, "calibration_"):
+            a, b = prior.fall_model.calibration_
+            margin.link = (float(a), float(b), float(getattr(prior.fall_model, "threshold_", 0.0)))
         spread_m = float(np.sqrt(np.var(margin.mean[margin.n_known:]) + np.mean(np.diag(margin.cov))))
         out.update(
             margin_belief=margin,

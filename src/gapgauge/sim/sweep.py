@@ -106,6 +106,7 @@ def sweep(
     """
     scenario = scenario if isinstance(scenario, Scenario) else load_scenario(scenario)
     _check_arguments(rollouts, design, seed, workers, chunk_size)
+    check_model(scenario)  # before the store is touched: a bad model leaves no run behind
     chunk = int(chunk_size or DEFAULT_CHUNK)
     db = store if isinstance(store, Store) else Store(store)
     try:
@@ -140,6 +141,24 @@ def sweep(
     finally:
         if db is not store:
             db.close()
+
+
+def check_model(scenario: Scenario) -> None:
+    """Compile the scenario's MJCF once, so a model MuJoCo cannot use (not XML, an ``<include>`` that is
+    missing, no ``ankle_servo``...) is one :class:`ScenarioError` line before any work, not a crash later.
+
+    The scenario loader only looks for ``<mujoco`` near the file's start; compiling is MuJoCo's job.
+    """
+    from .model import model_layout
+
+    try:
+        model_layout(scenario)
+    except ValueError as exc:
+        text = " ".join(str(exc).split())
+        raise ScenarioError(
+            f"{scenario.path}: key 'model': MuJoCo cannot use {scenario.model_path} ({text}); "
+            "fix the MJCF file or name the bundled models/planar_body.xml"
+        ) from None
 
 
 def _check_arguments(rollouts: Any, design: str, seed: Any, workers: Any, chunk_size: Any) -> None:

@@ -156,6 +156,9 @@ def ingest(
     if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or seed < 0:
         raise GapgaugeError(f"--seed {seed!r}: give a non-negative whole number")
     matches, seed = int(matches), int(seed)
+    from ..sim.sweep import check_model
+
+    check_model(scenario)  # matched simulations need the model: refuse a bad one before storing any trial
     scenario_hash = store.add_scenario(scenario)
     summary = IngestSummary(scenario_hash=scenario_hash, matches=matches, seed=seed)
     bar = _Progress(progress, len(paths))

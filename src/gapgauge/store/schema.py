@@ -126,8 +126,8 @@ def read_version(conn: sqlite3.Connection) -> int | None:
         return None
     try:
         rows = dict(conn.execute("SELECT key, value FROM meta").fetchall())
-    except sqlite3.DatabaseError:
-        return None
+    except sqlite3.OperationalError:  # another program's meta table, with other columns
+        return None  # (a damaged page raises plain DatabaseError, which goes up: the store is damaged)
     if rows.get("application") != APPLICATION:
         return None
     try:
