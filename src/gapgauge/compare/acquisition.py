@@ -202,7 +202,9 @@ def _maximise(
 
 def _log_probability(q: np.ndarray) -> np.ndarray:
     """``log q`` for a probability ``q`` in [0, 1], floored so a certain fall is very bad, not -inf."""
-    return np.log(np.clip(q, np.exp(LOG_FLOOR / 10), 1.0))
+    # exp(LOG_FLOOR / 10) underflows to 0, so floor the logarithm rather than the probability
+    with np.errstate(divide="ignore"):
+        return np.maximum(np.log(np.clip(q, 0.0, 1.0)), LOG_FLOOR / 10)
 
 
 def log_constrained_improvement(
