@@ -77,7 +77,6 @@ def test_a_sweep_over_absurd_bounds_finishes_and_stores_every_divergence_with_it
     assert CliRunner().invoke(main, ["store", "check", "--store", str(store)]).exit_code == 0
 
 
-@pytest.mark.slow
 def test_the_prior_leaves_diverged_rollouts_out_and_says_so(absurd):
     scenario, store, _ = absurd
     with sqlite3.connect(store) as conn:
