@@ -169,3 +169,19 @@ def test_params_from_mapping_refuses_out_of_bounds_and_unknown_names() -> None:
     missing.pop("hip_kd")
     with pytest.raises(ScenarioError, match="missing parameter"):
         scenario.params_from_mapping(missing)
+
+
+def test_model_include_leaving_the_project_is_refused(project: Path) -> None:
+    text = (project / "models" / "planar_body.xml").read_text()
+    bad = text.replace("<worldbody>", '<include file="../../../../etc/other.xml"/>\n  <worldbody>', 1)
+    (project / "models" / "leaky.xml").write_text(bad)
+    path = _variant(project, "../models/planar_body.xml", "../models/leaky.xml")
+    with pytest.raises(ScenarioError, match=r"file='../../../../etc/other.xml'.*leaves the scenario's project folder"):
+        load_scenario(path)
+
+
+def test_model_that_is_not_well_formed_xml_is_refused(project: Path) -> None:
+    (project / "models" / "cut.xml").write_text((project / "models" / "planar_body.xml").read_text()[:3000])
+    path = _variant(project, "../models/planar_body.xml", "../models/cut.xml")
+    with pytest.raises(ScenarioError, match=r"not well-formed XML"):
+        load_scenario(path)

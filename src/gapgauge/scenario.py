@@ -23,6 +23,7 @@ import sys
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
+from xml.etree import ElementTree
 
 import numpy as np
 
@@ -432,7 +433,7 @@ def _build(path: Path, raw: dict, root: Path, model_origin: Path) -> Scenario:
     description = top.get("description", str, "")
     model_value = top.get("model", str, fix='name the MJCF file, e.g. model = "../models/planar_body.xml"')
     model_path = _resolve_inside(model_origin, "model", model_value, root, ".xml")
-    _check_mjcf(model_path, path)
+    _check_mjcf(model_path, path, root)
 
     task = _task(top.table_at("task", default_empty=False))
     parameters = _parameters(top, path)
@@ -475,7 +476,7 @@ def _build(path: Path, raw: dict, root: Path, model_origin: Path) -> Scenario:
     )
 
 
-def _check_mjcf(model_path: Path, scenario_path: Path) -> None:
+def _check_mjcf(model_path: Path, scenario_path: Path, root: Path) -> None:
     head = model_path.read_bytes()[:4096]
     try:
         text = head.decode("utf-8")
@@ -487,6 +488,38 @@ def _check_mjcf(model_path: Path, scenario_path: Path) -> None:
         raise ScenarioError(
             f"{scenario_path}: key 'model': {model_path} has no <mujoco> element near its start; name an MJCF file"
         )
+    _check_model_files(model_path, scenario_path, root)
+
+
+# MJCF attributes that name files or folders MuJoCo will read (include, meshes, textures, heightfields)
+_FILE_ATTRIBUTES = ("file", "meshdir", "texturedir", "assetdir")
+MAX_MODEL_BYTES = 20_000_000
+
+
+def _check_model_files(model_path: Path, scenario_path: Path, root: Path) -> None:
+    """Refuse a model whose includes or assets leave the scenario's project folder (or are absolute)."""
+    size = model_path.stat().st_size
+    if size > MAX_MODEL_BYTES:
+        raise ScenarioError(
+            f"{scenario_path}: key 'model': {model_path} is {size} bytes, more than {MAX_MODEL_BYTES}; "
+            "name the MJCF of a planar balancing body"
+        )
+    try:
+        tree = ElementTree.parse(model_path)
+    except ElementTree.ParseError as exc:
+        raise ScenarioError(f"{scenario_path}: key 'model': {model_path} is not well-formed XML ({exc}); "
+                            "fix the MJCF file") from None
+    for element in tree.iter():
+        for attribute in _FILE_ATTRIBUTES:
+            value = element.get(attribute)
+            if value is None:
+                continue
+            target = (model_path.parent / value).resolve()
+            if Path(value).is_absolute() or not target.is_relative_to(root):
+                raise ScenarioError(
+                    f"{scenario_path}: key 'model': {model_path} names {attribute}={value!r} in <{element.tag}>, "
+                    f"which leaves the scenario's project folder {root}; keep model files inside it"
+                )
 
 
 def _task(r: _Reader) -> Task:

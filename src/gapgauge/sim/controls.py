@@ -84,7 +84,7 @@ def build_controls(
         ``(n x nstep x ncontrol)`` float64, ``ncontrol = nu + 6 nbody`` (see :data:`CONTROL_SPEC`):
         servo set-points (rad), platform target (m), applied body wrenches (N, N m).
     """
-    base, lay = _load(scenario.model_path)
+    base, lay = _load(scenario.model_path, scenario.path)
     params = np.atleast_2d(np.asarray(params, dtype=float))
     physics = np.atleast_2d(np.asarray(physics, dtype=float))
     n = params.shape[0]
@@ -139,7 +139,7 @@ def initial_state(scenario: Scenario, params: np.ndarray) -> np.ndarray:
     just touching the platform top, the platform at rest at 0, and each servo's lag state (activation)
     at its set-point so no servo starts with a step.
     """
-    base, lay = _load(scenario.model_path)
+    base, lay = _load(scenario.model_path, scenario.path)
     stand = setpoints(scenario, params)
     n = stand.shape[0]
     data = mujoco.MjData(base)

@@ -30,6 +30,7 @@ from pathlib import Path
 import mujoco
 import numpy as np
 
+from ..errors import ScenarioError
 from ..scenario import Scenario
 from ..trajectory import JOINTS
 
@@ -84,14 +85,23 @@ class ModelLayout:
 _BASE_MODELS: dict[Path, tuple[int, mujoco.MjModel, ModelLayout]] = {}
 
 
-def _load(path: Path) -> tuple[mujoco.MjModel, ModelLayout]:
+def _load(path: Path, scenario_path: Path | None = None) -> tuple[mujoco.MjModel, ModelLayout]:
     path = path.resolve()
     mtime = path.stat().st_mtime_ns
     hit = _BASE_MODELS.get(path)
     if hit is not None and hit[0] == mtime:
         return hit[1], hit[2]
-    model = mujoco.MjModel.from_xml_path(str(path))
-    layout = _layout(model)
+    try:
+        model = mujoco.MjModel.from_xml_path(str(path))
+        layout = _layout(model)
+    except ValueError as exc:
+        # the scenario loader only looks for <mujoco near the start; compiling is MuJoCo's job, and a
+        # model it cannot use (cut-off XML, a missing include, no ankle_servo) is the user's to fix
+        text = " ".join(str(exc).split())
+        raise ScenarioError(
+            f"{scenario_path or path}: key 'model': MuJoCo cannot use {path} ({text}); "
+            "fix the MJCF file or name the bundled models/planar_body.xml"
+        ) from None
     _BASE_MODELS[path] = (mtime, model, layout)
     return model, layout
 
@@ -101,12 +111,12 @@ def base_model(scenario: Scenario) -> mujoco.MjModel:
 
     The returned model is shared: copy it (``copy.copy``) before changing any field.
     """
-    return _load(scenario.model_path)[0]
+    return _load(scenario.model_path, scenario.path)[0]
 
 
 def model_layout(scenario: Scenario) -> ModelLayout:
     """Name lookups of the scenario's model (see :class:`ModelLayout`), cached with the model."""
-    return _load(scenario.model_path)[1]
+    return _load(scenario.model_path, scenario.path)[1]
 
 
 def _layout(model: mujoco.MjModel) -> ModelLayout:
@@ -185,7 +195,7 @@ def build_models(
     Returns:
         ``n`` models (``out[:n]`` reused first, then new copies of the base model).
     """
-    base, lay = _load(scenario.model_path)
+    base, lay = _load(scenario.model_path, scenario.path)
     params = np.atleast_2d(np.asarray(params, dtype=float))
     physics = np.atleast_2d(np.asarray(physics, dtype=float))
     n = params.shape[0]

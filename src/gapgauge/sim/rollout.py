@@ -3,8 +3,11 @@
 One MjModel per rollout carries its gains and physics (:mod:`gapgauge.sim.model`); the inputs are
 open-loop arrays (:mod:`gapgauge.sim.controls`); ``mujoco.rollout`` steps them all in C threads, one
 reused ``MjData`` per thread. Rollouts go through in sub-batches of at most :data:`SUB_BATCH`, with
-every large array (controls, states, sensor data) allocated once per call and reused, so memory does
-not grow with the number of rollouts unless the full trajectories are asked for.
+every large array (controls, states, sensor data) allocated once per call in two slots and reused, so
+memory does not grow with the number of rollouts unless the full trajectories are asked for. While
+MuJoCo steps one sub-batch (it releases the GIL), the calling thread measures the one before and
+builds the one after (:func:`_pipeline`), so the Python work does not leave a core idle; the sweep
+streams its chunks through one such pipeline (:func:`simulate_chunks`).
 
 Trajectory time base: ``mujoco.rollout`` records ``sensordata`` as computed inside step ``k``, i.e. at
 the state before that step's integration, time ``t_k = k dt``; so sample 0 is the initial state.
@@ -25,47 +28,63 @@ Otherwise the status is ``fell`` if the ``fell`` feature says so, else ``ok``.
 from __future__ import annotations
 
 import os
+from collections import deque
+from collections.abc import Collection, Iterable, Iterator
+from concurrent.futures import ThreadPoolExecutor
+from dataclasses import dataclass, field
 
 import mujoco
 import mujoco.rollout
 import numpy as np
 
-from ..features import compute_features, cop_from_foot_forces
+from ..features import channels_needed, compute_features, cop_from_foot_forces
 from ..observe import logger_view
 from ..records import RolloutBatch
 from ..scenario import Scenario
-from ..trajectory import Trajectory
+from ..trajectory import JOINTS, Trajectory
 from .controls import CONTROL_SPEC, STATE_SPEC, build_controls, control_size, initial_state, state_offsets
 from .model import ModelLayout, _load, build_models
 
 #: rollouts per ``mujoco.rollout`` call: about 130 MB of controls, states and sensor data at 1,500
-#: steps, large enough that the per-call overhead is small against the stepping.
+#: steps, large enough that the per-call overhead is small against the stepping. Two sub-batches are in
+#: flight at a time (see :func:`simulate_chunks`), so the buffers take twice that.
 SUB_BATCH = 128
 
+#: trajectory channels from the sensor data, in the order :func:`_channels` returns them
+_SIM_CHANNELS: tuple[str, ...] = (
+    *(f"{joint}_{kind}" for joint in JOINTS for kind in ("angle", "rate", "torque")),
+    "heel_force", "toe_force", "heel_x", "toe_x", "com_x", "com_z", "com_vx", "com_vz", "trunk_pitch",
+    "body_contact", "platform_x",
+)
+#: channel -> (sensor, component) where they are not named alike
+_SENSOR_OF: dict[str, tuple[str, int]] = {
+    "heel_x": ("heel_pos", 0), "toe_x": ("toe_pos", 0), "com_x": ("com_pos", 0), "com_vx": ("com_vel", 0),
+    "com_vz": ("com_vel", 2),
+}
 
-def _channels(sd: np.ndarray, lay: ModelLayout, with_cop: bool) -> dict[str, np.ndarray]:
-    """Trajectory channels (SI), each ``(nbatch x nstep)``, from ``sd (nbatch x nstep x nsensordata)``."""
+
+def _channels(sd: np.ndarray, lay: ModelLayout, with_cop: bool,
+              names: Collection[str] | None = None, copy: bool = True) -> dict[str, np.ndarray]:
+    """Trajectory channels (SI), each ``(nbatch x nstep)``, from ``sd (nbatch x nstep x nsensordata)``:
+    all of them, or only ``names`` (the sweep extracts only what its features read); ``cop_x`` too
+    with ``with_cop``. Without ``copy``, channels read straight from one sensor are strided views into
+    ``sd``, valid only while ``sd`` is (the low-pass reads each once, into its own padded copy)."""
 
     def s(name: str, axis: int = 0) -> np.ndarray:
         return sd[:, :, lay.sensor[name][0] + axis]
 
-    ch: dict[str, np.ndarray] = {}
-    for joint in ("ankle", "knee", "hip"):
-        ch[f"{joint}_angle"] = s(f"{joint}_angle").copy()
-        ch[f"{joint}_rate"] = s(f"{joint}_rate").copy()
-        ch[f"{joint}_torque"] = s(f"{joint}_torque").copy()
-    ch["heel_force"] = s("heel_force").copy()
-    ch["toe_force"] = s("toe_force").copy()
-    ch["heel_x"] = s("heel_pos").copy()
-    ch["toe_x"] = s("toe_pos").copy()
-    ch["com_x"] = s("com_pos").copy()
-    ch["com_z"] = s("com_pos", 2) - lay.support_z
-    ch["com_vx"] = s("com_vel").copy()
-    ch["com_vz"] = s("com_vel", 2).copy()
-    # Trunk pitch from vertical: the hinge angles add up along the planar chain (DEVELOPERS.md).
-    ch["trunk_pitch"] = s("root_pitch") + ch["ankle_angle"] + ch["knee_angle"] + ch["hip_angle"]
-    ch["body_contact"] = s("thigh_contact") + s("trunk_contact")
-    ch["platform_x"] = s("platform_x").copy()
+    def channel(name: str) -> np.ndarray:
+        if name == "com_z":
+            return s("com_pos", 2) - lay.support_z
+        if name == "trunk_pitch":
+            # Trunk pitch from vertical: the hinge angles add up along the planar chain (DEVELOPERS.md).
+            return s("root_pitch") + s("ankle_angle") + s("knee_angle") + s("hip_angle")
+        if name == "body_contact":
+            return s("thigh_contact") + s("trunk_contact")
+        values = s(*_SENSOR_OF.get(name, (name, 0)))
+        return values.copy() if copy else values
+
+    ch = {name: channel(name) for name in _SIM_CHANNELS if names is None or name in names}
     if with_cop:
         ch["cop_x"] = cop_from_foot_forces(ch["heel_force"], ch["toe_force"], ch["heel_x"], ch["toe_x"])
     return ch
@@ -83,27 +102,237 @@ def _divergence(state: np.ndarray, sd: np.ndarray, offsets: dict[str, int], nv: 
     nbatch, nstep = state.shape[:2]
     t_end = nstep * dt
     time = state[:, :, offsets["time"]]
-    finite_state = np.isfinite(state).all(axis=2)
-    finite_sensor = np.isfinite(sd).all(axis=2)
-    qvel = np.abs(state[:, :, offsets["qvel"]:offsets["qvel"] + nv])
+    qvel = state[:, :, offsets["qvel"]:offsets["qvel"] + nv]
     limit = 1.0 / dt
+    # Whole-row screens first (reductions, no per-sample arrays); the sample where a rollout went wrong
+    # is looked for only in the rows they flag. A row holding NaN is flagged by the finiteness screen,
+    # whatever its NaN does to the speed screen's maximum.
+    finite = np.isfinite(state.reshape(nbatch, -1)).all(axis=1) & np.isfinite(sd.reshape(nbatch, -1)).all(axis=1)
     with np.errstate(invalid="ignore"):
-        fast = (qvel > limit).any(axis=2)
+        fast = np.maximum(qvel.max(axis=(1, 2)), -qvel.min(axis=(1, 2))) > limit
     reasons = [""] * nbatch
-    for i in np.flatnonzero(~finite_state.all(axis=1) | ~finite_sensor.all(axis=1) | fast.any(axis=1)
-                            | ~(np.abs(time[:, -1] - t_end) < 0.5 * dt)):
-        if not finite_state[i].all() or not finite_sensor[i].all():
-            k = int(np.argmin(finite_state[i] & finite_sensor[i]))
+    for i in np.flatnonzero(~finite | fast | ~(np.abs(time[:, -1] - t_end) < 0.5 * dt)):
+        finite_i = np.isfinite(state[i]).all(axis=1) & np.isfinite(sd[i]).all(axis=1)
+        if not finite_i.all():
+            k = int(np.argmin(finite_i))
             reasons[i] = f"non-finite state or sensor value at t = {k * dt:.3f} s"
         elif not abs(time[i, -1] - t_end) < 0.5 * dt:
             reached = float(np.nanmax(time[i]))
             reasons[i] = (f"MuJoCo stopped the rollout at t = {reached:.3f} s of {t_end:.3f} s "
                           "(a simulation warning, e.g. unstable acceleration)")
         else:
-            k = int(np.argmax(fast[i]))
-            reasons[i] = (f"|qvel| = {float(np.nanmax(qvel[i, k])):.3g} exceeds {limit:.3g} (one unit per "
+            speed = np.abs(qvel[i])
+            with np.errstate(invalid="ignore"):
+                k = int(np.argmax((speed > limit).any(axis=1)))
+            reasons[i] = (f"|qvel| = {float(np.nanmax(speed[k])):.3g} exceeds {limit:.3g} (one unit per "
                           f"time step) at t = {(k + 1) * dt:.3f} s")
     return reasons
+
+
+@dataclass
+class _Job:
+    """One batch of rollouts in the pipeline; its results fill in as its sub-batches are measured."""
+
+    params: np.ndarray  # (n x dim)
+    physics: np.ndarray  # (n x k)
+    indices: np.ndarray  # (n,)
+    run: np.ndarray  # rows with finite inputs, the ones simulated
+    features: dict[str, np.ndarray]  # name -> (n,)
+    reason: list[str]
+    full: dict[str, np.ndarray] | None  # channel -> (n x nstep) when the trajectories are kept
+    pending: int  # sub-batches not measured yet
+
+
+@dataclass
+class _Slot:
+    """Buffers of one sub-batch in flight: its models, controls and initial states, and MuJoCo's output."""
+
+    models: list[mujoco.MjModel] = field(default_factory=list)
+    control: np.ndarray | None = None  # (m x nstep x ncontrol)
+    state: np.ndarray | None = None  # (m x nstep x nstate)
+    sensordata: np.ndarray | None = None  # (m x nstep x nsensordata)
+    x0: np.ndarray | None = None  # (m x nstate)
+
+
+def _job(scenario: Scenario, params: np.ndarray, physics: np.ndarray | None, indices: np.ndarray | None,
+         keep: bool, sub_batch: int) -> _Job:
+    """Check one batch's arrays (shapes as in :func:`simulate`) and set up its results."""
+    params = np.array(params, dtype=float, ndmin=2)
+    n = params.shape[0]
+    if params.ndim != 2 or params.shape[1] != scenario.dim:
+        raise ValueError(f"params must be (n x {scenario.dim}) for {scenario.name!r}, got {params.shape}")
+    k = len(scenario.physics)
+    if physics is None:
+        physics = np.tile([r.nominal for r in scenario.physics], (n, 1)).astype(float)
+    physics = np.array(physics, dtype=float, ndmin=2)
+    if physics.shape != (n, k):
+        raise ValueError(f"physics must be ({n} x {k}) to match params, got {physics.shape}")
+    indices = np.arange(n) if indices is None else np.asarray(indices).reshape(-1)
+    if indices.shape != (n,):
+        raise ValueError(f"indices must be ({n},) to match params, got {indices.shape}")
+    reason = [""] * n
+    finite_in = np.isfinite(params).all(axis=1) & np.isfinite(physics).all(axis=1)
+    for i in np.flatnonzero(~finite_in):
+        bad = [p.name for p, v in zip(scenario.parameters, params[i], strict=True) if not np.isfinite(v)]
+        bad += [r.name for r, v in zip(scenario.physics, physics[i], strict=True) if not np.isfinite(v)]
+        reason[i] = f"not simulated: non-finite input {', '.join(bad)}"
+    run = np.flatnonzero(finite_in)
+    return _Job(params, physics, indices, run, {name: np.full(n, np.nan) for name in scenario.features.names},
+                reason, {} if keep else None, -(-len(run) // sub_batch))
+
+
+def _pipeline(scenario: Scenario, jobs: Iterable[_Job], nthread: int, sub_batch: int) -> Iterator[_Job]:
+    """Simulate and measure ``jobs`` in sub-batches of at most ``sub_batch``; yield each job, in order,
+    once all its sub-batches are measured.
+
+    Three stages overlap: while ``mujoco.rollout`` steps sub-batch ``k`` in its C threads (it releases the
+    GIL), this thread measures sub-batch ``k - 1`` (divergence, channels, logger view, features), hands
+    finished jobs to the caller, and builds sub-batch ``k + 1`` (models, controls, initial states). Two
+    slots of buffers alternate: ``k + 1`` is built in the slot ``k - 1`` has just been measured from.
+    Results do not depend on the overlap: each stage of a sub-batch runs in the same order on the same
+    data as it would alone.
+    """
+    base, lay = _load(scenario.model_path, scenario.path)
+    task = scenario.task
+    nstep, dt = task.nstep, task.timestep
+    names = scenario.features.names
+    measured = [name for name in names if name != "fell"]
+    logged = channels_needed(measured)  # what the measured features read, low-passed as a log is
+    raw = channels_needed(["fell"])  # what the fall test reads, unfiltered
+    wanted = set(logged) | set(raw)
+    t = np.arange(nstep) * dt
+    ncontrol = control_size(base)
+    nstate = mujoco.mj_stateSize(base, STATE_SPEC)
+    offsets = state_offsets(base)
+    datas = [mujoco.MjData(base) for _ in range(nthread)]
+    order: deque[_Job] = deque()
+
+    def sub_batches() -> Iterator[tuple[_Job, np.ndarray]]:
+        for job in jobs:
+            order.append(job)
+            for first in range(0, len(job.run), sub_batch):
+                yield job, job.run[first:first + sub_batch]
+
+    source = sub_batches()
+
+    def build(slot: _Slot) -> tuple[_Job, np.ndarray, _Slot] | None:
+        got = next(source, None)
+        if got is None:
+            return None
+        job, rows = got
+        m = len(rows)
+        if slot.control is None or slot.control.shape[0] < m:
+            slot.control = np.empty((m, nstep, ncontrol))
+            slot.state = np.empty((m, nstep, nstate))
+            slot.sensordata = np.empty((m, nstep, base.nsensordata))
+        slot.models = build_models(scenario, job.params[rows], job.physics[rows], out=slot.models)
+        build_controls(scenario, job.params[rows], job.physics[rows], out=slot.control)
+        slot.x0 = initial_state(scenario, job.params[rows])
+        return job, rows, slot
+
+    def step(runner: mujoco.rollout.Rollout, work: tuple[_Job, np.ndarray, _Slot]) -> None:
+        _, rows, slot = work
+        m = len(rows)
+        # Shapes and types are fixed above, once; skip_checks also avoids the wrapper's copy of
+        # the control array (its singleton tiling copies even when nothing is tiled).
+        runner.rollout(slot.models[:m], datas, slot.x0, slot.control[:m], control_spec=CONTROL_SPEC,
+                       skip_checks=True, nstep=nstep, state=slot.state[:m], sensordata=slot.sensordata[:m])
+
+    def measure(work: tuple[_Job, np.ndarray, _Slot]) -> None:
+        job, rows, slot = work
+        m = len(rows)
+        st, sd = slot.state[:m], slot.sensordata[:m]
+        why = _divergence(st, sd, offsets, base.nv, dt)
+        good = np.array([not w for w in why])
+        for r, w in zip(rows, why, strict=True):
+            job.reason[r] = w
+        keep = job.full is not None
+        # Views suffice when nothing is kept: everything read from them is done before this slot's
+        # sensor data is overwritten (the sub-batch built into it next is stepped after this returns).
+        ch = _channels(sd, lay, with_cop=keep, names=None if keep else wanted, copy=keep)
+        if keep:
+            for name, values in ch.items():
+                job.full.setdefault(name, np.full((len(job.reason), nstep), np.nan))[rows] = values
+        if good.any():
+            # Measured as a log is (same resampling and low-pass); the fall itself is judged on the
+            # raw signals, which include body contact that no logger records.
+            view = Trajectory(t, {c: ch[c] for c in logged}, onset=task.onset)
+            fall = Trajectory(t, {c: ch[c] for c in raw}, onset=task.onset)
+            if not good.all():
+                view, fall = view.select(good), fall.select(good)
+            got = compute_features(logger_view(view, scenario.hardware), scenario.features, measured) if measured \
+                else {}
+            got["fell"] = compute_features(fall, scenario.features, ["fell"])["fell"]
+            for name in names:
+                job.features[name][rows[good]] = got[name]
+        job.pending -= 1
+
+    def finished() -> Iterator[_Job]:
+        while order and order[0].pending == 0:
+            yield order.popleft()
+
+    slots = (_Slot(), _Slot())
+    with mujoco.rollout.Rollout(nthread=nthread if nthread > 1 else 0) as runner, \
+            ThreadPoolExecutor(max_workers=1, thread_name_prefix="gapgauge-rollout") as stepper:
+        current = build(slots[0])
+        previous = None
+        k = 0
+        while current is not None:
+            stepping = stepper.submit(step, runner, current)
+            if previous is not None:
+                measure(previous)
+            yield from finished()
+            following = build(slots[(k + 1) % 2])  # the slot `previous` was measured from
+            stepping.result()
+            previous, current = current, following
+            k += 1
+        if previous is not None:
+            measure(previous)
+        yield from finished()
+
+
+def _result(scenario: Scenario, job: _Job, keep: bool) -> RolloutBatch | tuple[RolloutBatch, Trajectory]:
+    """A finished job as :func:`simulate` returns it."""
+    names = scenario.features.names
+    features, reason = job.features, job.reason
+    diverged = np.array([bool(w) for w in reason], dtype=bool)
+    with np.errstate(invalid="ignore"):
+        fell = features["fell"] == 1.0
+    status = np.where(diverged, "diverged", np.where(fell, "fell", "ok"))
+    objective = np.asarray(scenario.objective.evaluate(features), dtype=float)
+    objective[diverged] = np.nan
+    for name in names:
+        features[name][diverged] = np.nan
+    batch = RolloutBatch(
+        indices=job.indices.copy(),
+        params=job.params,
+        physics=job.physics,
+        physics_names=tuple(r.name for r in scenario.physics),
+        status=status,
+        reason=np.array(reason, dtype=object),
+        objective=objective,
+        features=features,
+    )
+    if not keep:
+        return batch
+    task = scenario.task
+    nstep = task.nstep
+    n = len(reason)
+    full = job.full
+    if not full:
+        base, lay = _load(scenario.model_path, scenario.path)
+        empty = np.zeros((0, nstep, base.nsensordata))
+        full = {c: np.full((n, nstep), np.nan) for c in _channels(empty, lay, True)}
+    meta = {"source": "simulation", "scenario": scenario.name, "scenario_hash": scenario.content_hash,
+            "indices": job.indices.tolist()}
+    return batch, Trajectory(np.arange(nstep) * task.timestep, full, onset=task.onset, meta=meta)
+
+
+def _threads(nthread: int | None, sub_batch: int) -> int:
+    nthread = (os.cpu_count() or 1) if nthread is None else int(nthread)
+    if nthread < 1 or sub_batch < 1:
+        raise ValueError(f"nthread and sub_batch must be positive, got {nthread} and {sub_batch}")
+    return nthread
 
 
 def simulate(
@@ -139,106 +368,30 @@ def simulate(
     Raises:
         ValueError: an array of the wrong shape (a programming error, not a rollout's fate).
     """
-    params = np.array(params, dtype=float, ndmin=2)
-    n = params.shape[0]
-    if params.ndim != 2 or params.shape[1] != scenario.dim:
-        raise ValueError(f"params must be (n x {scenario.dim}) for {scenario.name!r}, got {params.shape}")
-    k = len(scenario.physics)
-    if physics is None:
-        physics = np.tile([r.nominal for r in scenario.physics], (n, 1)).astype(float)
-    physics = np.array(physics, dtype=float, ndmin=2)
-    if physics.shape != (n, k):
-        raise ValueError(f"physics must be ({n} x {k}) to match params, got {physics.shape}")
-    indices = np.arange(n) if indices is None else np.asarray(indices).reshape(-1)
-    if indices.shape != (n,):
-        raise ValueError(f"indices must be ({n},) to match params, got {indices.shape}")
-    nthread = (os.cpu_count() or 1) if nthread is None else int(nthread)
-    if nthread < 1 or sub_batch < 1:
-        raise ValueError(f"nthread and sub_batch must be positive, got {nthread} and {sub_batch}")
+    nthread = _threads(nthread, sub_batch)
+    job = _job(scenario, params, physics, indices, return_trajectory, sub_batch)
+    (done,) = _pipeline(scenario, [job], nthread, sub_batch)
+    return _result(scenario, done, return_trajectory)
 
-    base, lay = _load(scenario.model_path)
-    task = scenario.task
-    nstep, dt = task.nstep, task.timestep
-    names = scenario.features.names
-    measured = [name for name in names if name != "fell"]
-    features = {name: np.full(n, np.nan) for name in names}
-    reason = [""] * n
 
-    finite_in = np.isfinite(params).all(axis=1) & np.isfinite(physics).all(axis=1)
-    for i in np.flatnonzero(~finite_in):
-        bad = [p.name for p, v in zip(scenario.parameters, params[i], strict=True) if not np.isfinite(v)]
-        bad += [r.name for r, v in zip(scenario.physics, physics[i], strict=True) if not np.isfinite(v)]
-        reason[i] = f"not simulated: non-finite input {', '.join(bad)}"
-    run = np.flatnonzero(finite_in)
+def simulate_chunks(
+    scenario: Scenario,
+    chunks: Iterable[tuple[np.ndarray, np.ndarray, np.ndarray]],
+    *,
+    nthread: int | None = None,
+    sub_batch: int = SUB_BATCH,
+) -> Iterator[RolloutBatch]:
+    """:func:`simulate` over a stream of chunks, one pipeline for them all; yields each chunk's
+    :class:`~gapgauge.records.RolloutBatch` in order as soon as it is measured.
 
-    t = np.arange(nstep) * dt
-    full: dict[str, np.ndarray] | None = None
-    if return_trajectory:
-        full = {}
-
-    size = min(sub_batch, max(len(run), 1))
-    nstate = mujoco.mj_stateSize(base, STATE_SPEC)
-    control = np.empty((size, nstep, control_size(base)))
-    state = np.empty((size, nstep, nstate))
-    sensordata = np.empty((size, nstep, base.nsensordata))
-    offsets = state_offsets(base)
-    pool: list[mujoco.MjModel] = []
-    datas = [mujoco.MjData(base) for _ in range(nthread)]
-    with mujoco.rollout.Rollout(nthread=nthread if nthread > 1 else 0) as runner:
-        for first in range(0, len(run), size):
-            rows = run[first:first + size]
-            m = len(rows)
-            pool = build_models(scenario, params[rows], physics[rows], out=pool)
-            ctrl = build_controls(scenario, params[rows], physics[rows], out=control)
-            x0 = initial_state(scenario, params[rows])
-            st, sd = state[:m], sensordata[:m]
-            # Shapes and types are fixed above, once; skip_checks also avoids the wrapper's copy of
-            # the control array (its singleton tiling copies even when nothing is tiled).
-            runner.rollout(pool[:m], datas, x0, ctrl, control_spec=CONTROL_SPEC, skip_checks=True,
-                           nstep=nstep, state=st, sensordata=sd)
-
-            why = _divergence(st, sd, offsets, base.nv, dt)
-            good = np.array([not w for w in why])
-            for r, w in zip(rows, why, strict=True):
-                reason[r] = w
-            ch = _channels(sd, lay, with_cop=return_trajectory)
-            if full is not None:
-                for name, values in ch.items():
-                    full.setdefault(name, np.full((n, nstep), np.nan))[rows] = values
-            if good.any():
-                traj = Trajectory(t, {c: v for c, v in ch.items() if c != "cop_x"}, onset=task.onset)
-                if not good.all():
-                    traj = traj.select(good)
-                # Measured as a log is (same resampling and low-pass); the fall itself is judged on the
-                # raw signals, which include body contact that no logger records.
-                got = compute_features(logger_view(traj, scenario.hardware), scenario.features, measured)
-                got["fell"] = compute_features(traj, scenario.features, ["fell"])["fell"]
-                for name in names:
-                    features[name][rows[good]] = got[name]
-
-    diverged = np.array([bool(w) for w in reason], dtype=bool)
-    with np.errstate(invalid="ignore"):
-        fell = features["fell"] == 1.0
-    status = np.where(diverged, "diverged", np.where(fell, "fell", "ok"))
-    objective = np.asarray(scenario.objective.evaluate(features), dtype=float)
-    objective[diverged] = np.nan
-    for name in names:
-        features[name][diverged] = np.nan
-    batch = RolloutBatch(
-        indices=indices.copy(),
-        params=params,
-        physics=physics,
-        physics_names=tuple(r.name for r in scenario.physics),
-        status=status,
-        reason=np.array(reason, dtype=object),
-        objective=objective,
-        features=features,
-    )
-    if not return_trajectory:
-        return batch
-    if full is None or not full:
-        empty = np.zeros((0, nstep, base.nsensordata))
-        full = {c: np.full((n, nstep), np.nan) for c in _channels(empty, lay, True)}
-    meta = {"source": "simulation", "scenario": scenario.name, "scenario_hash": scenario.content_hash,
-            "indices": indices.tolist()}
-    return batch, Trajectory(t, full, onset=task.onset, meta=meta)
+    Each chunk is ``(params (n x dim), physics (n x k), indices (n,))`` as in :func:`simulate`, drawn
+    from ``chunks`` only when the pipeline needs it. Results are those of :func:`simulate` on each
+    chunk alone; the one difference is speed: the overlap of building, stepping and measuring
+    (see :func:`_pipeline`) runs on across chunk edges, and the caller's work on a yielded chunk (a
+    store write, say) overlaps the stepping of the next. Stopping the iteration early waits for the
+    ``mujoco.rollout`` call in flight (at most one sub-batch).
+    """
+    nthread = _threads(nthread, sub_batch)
+    jobs = (_job(scenario, p, ph, ix, False, sub_batch) for p, ph, ix in chunks)
+    for done in _pipeline(scenario, jobs, nthread, sub_batch):
+        yield _result(scenario, done, False)
