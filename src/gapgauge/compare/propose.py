@@ -158,7 +158,7 @@ def propose(
             y_hw = np.append(y_hw, result.mean)
             belief = model.copy_with_high(X_hw, y_hw, optimize=False)
             best = result.mean if best is None else min(best, result.mean)
-    return Proposals(
+    proposals = Proposals(
         scenario=scenario.name,
         proposals=out,
         max_fall_risk=float(max_fall_risk),
@@ -171,6 +171,9 @@ def propose(
         units={p.name: p.unit for p in scenario.parameters},
         notes=notes,
     )
+    if store is not None:  # the report reads the latest proposals back with load_model("proposals", hash)
+        _open_store(store).save_model("proposals", scenario.content_hash, params=proposals.to_dict())
+    return proposals
 
 
 def _reason(slot: int, result: Any, best: float | None, limit: float) -> str:
