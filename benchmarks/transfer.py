@@ -33,6 +33,7 @@ best-achievable reference.
 from __future__ import annotations
 
 import argparse
+import hashlib
 import json
 import os
 import sys
@@ -79,17 +80,32 @@ def sweep_store(scenario, rollouts: int) -> Path:
     return path
 
 
+def model_code_key() -> str:
+    """Hash of the modelling code (gapgauge/compare): a stored prior fitted by other code is refitted."""
+    import gapgauge.compare as compare
+
+    digest = hashlib.sha256()
+    for path in sorted(Path(compare.__file__).parent.glob("*.py")):
+        digest.update(path.read_bytes())
+    return digest.hexdigest()[:16]
+
+
 def sweep_prior(scenario, path: Path):
-    """The prior of the sweep alone (no hardware trials): the stored one, or fitted and stored."""
+    """The prior of the sweep alone (no hardware trials): the stored one if fitted by the current
+    modelling code, else fitted and stored."""
+    key_path = path.with_suffix(".prior_key")
+    key = model_code_key()
     store = Store(path)
     try:
         try:
             prior = load_prior(scenario, store)
-            if prior.n_hardware == 0 and prior.seed == SWEEP_SEED:
+            if prior.n_hardware == 0 and prior.seed == SWEEP_SEED and key_path.exists() and key_path.read_text() == key:
                 return prior
         except ModelError:
             pass
-        return fit_prior(scenario, store, seed=SWEEP_SEED, progress=False)
+        prior = fit_prior(scenario, store, seed=SWEEP_SEED, progress=False)
+        key_path.write_text(key)
+        return prior
     finally:
         store.close()
 
@@ -199,7 +215,7 @@ def plot(results: dict, refs: dict, trials: int, path: Path) -> None:
     x = np.arange(1, trials + 1)
     for ax, profile in zip(axes[0], names, strict=True):
         ref = refs[profile]
-        for method in METHODS:
+        for method in results:
             curves = np.array([r["best_so_far"] for r in results[method] if r["profile"] == profile])
             if not curves.size:
                 continue

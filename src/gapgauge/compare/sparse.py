@@ -77,7 +77,9 @@ class SparseGP:
         noise: initial noise variance (standardised output units squared).
         n_inducing: number of inducing inputs ``m`` (at most the number of points).
         n_subsample: points used to fit the hyperparameters (all when fewer).
-        n_inducing_subsample: inducing inputs used while fitting the hyperparameters.
+        n_inducing_subsample: inducing inputs used while fitting the hyperparameters (may exceed
+            ``n_inducing``; equal to ``n_subsample``, the bound is the exact marginal likelihood of
+            the subsample).
         inducing: fixed inducing inputs ``(m x dim)`` to use instead of k-means++ (e.g. the data).
         normalize_y: standardise the targets before fitting.
         optimize: fit the hyperparameters by maximising the bound.
@@ -233,7 +235,7 @@ class SparseGP:
             self._Z_opt = np.asarray(self.inducing, dtype=float)
         else:
             self._Z_opt = self._X_opt[
-                kmeans_plusplus(self._X_opt, min(m, self.n_inducing_subsample, sub.size), rng)
+                kmeans_plusplus(self._X_opt, min(self.n_inducing_subsample, sub.size), rng)
             ]
         if self.optimize:
             self._optimise(rng)
