@@ -6,11 +6,17 @@ In one process:
    store writes) into a temporary store, timed by wall clock; peak resident memory of the process
    read after the last round (an upper bound: it covers the bare phases too, whose buffers are the
    size of the simulator's);
-2. bare ``mujoco.rollout`` on the same models (same parameters and physics draws), horizon, time
-   step, controls and thread count, in batches of the simulator's sub-batch size; only the rollout
-   calls are timed (models and controls are built outside the clock);
+2. bare ``mujoco.rollout``: the same rollouts (same design, physics draws, hence the same models),
+   horizon, time step, controls, initial states, thread count, ``mujoco.rollout.Rollout`` pool, and
+   the same batching (sub-batches of ``SUB_BATCH``, MuJoCo's default chunk size within each). Models,
+   controls and initial states are built outside the clock; only the ``rollout`` calls are timed, so
+   "bare" is MuJoCo stepping alone, nothing of ours. The sweep may overlap its own Python work with
+   the stepping (it does: :func:`gapgauge.sim.rollout.simulate_chunks`), which bare has none of;
    the two phases alternate in ``--rounds`` rounds so that load from others on a shared machine
-   falls on both alike; process CPU time is reported too (its ratio is the overhead alone);
+   falls on both alike, and the median of the per-round ratios is printed beside the pooled ratio
+   (a burst of load in one phase moves the pooled figure more than the median); process CPU time is
+   reported too (its ratio is the overhead alone, whatever the load: the cost of our Python, not its
+   overlap);
 3. reading the rollouts back from a store (``Store.rollouts``) at ``--read-rows`` rows.
 
 Prints both rates and their ratio; the last line is one JSON object with ``sweep_rollouts_per_s``,
@@ -111,7 +117,7 @@ def main() -> None:
     parser.add_argument("--workers", type=int, default=os.cpu_count() or 1, help="simulation threads")
     parser.add_argument("--chunk-size", type=int, default=None, help="sweep chunk size (default the sweep's)")
     parser.add_argument("--read-rows", type=int, default=100_000, help="rows in the store-read phase")
-    parser.add_argument("--rounds", type=int, default=4, help="alternations of the two phases (default 4)")
+    parser.add_argument("--rounds", type=int, default=8, help="alternations of the two phases (default 8)")
     parser.add_argument("--scenario", default=str(ROOT / "scenarios" / "push_recovery.toml"))
     args = parser.parse_args()
     n = 500 if args.quick else args.rollouts
@@ -120,9 +126,11 @@ def main() -> None:
 
     # Rounds alternate the two phases so that load from other users of a shared machine falls on both
     # alike; each round is its own sweep run (seed = round), and bare runs that run's models and inputs.
+    load_before = os.getloadavg()[0]
     rounds = max(1, min(args.rounds, n))
     sizes = [n // rounds + (r < n % rounds) for r in range(rounds)]
     sweep_wall = sweep_cpu = bare_wall = bare_cpu = 0.0
+    round_ratios = []
     counts = {"ok": 0, "fell": 0, "diverged": 0}
     with tempfile.TemporaryDirectory() as tmp:
         for seed, size in enumerate(sizes):
@@ -133,6 +141,7 @@ def main() -> None:
             sweep_wall += summary.wall_seconds
             counts = {k: v + getattr(summary, k) for k, v in counts.items()}
             wall, cpu = bare_seconds(scenario, size, seed, args.workers)
+            round_ratios.append(wall / summary.wall_seconds)
             bare_wall += wall
             bare_cpu += cpu
         peak = peak_rss_mb()  # before the read phase; bare's buffers are the size of the simulator's
@@ -146,6 +155,7 @@ def main() -> None:
           f"{counts['ok']} ok, {counts['fell']} fell, {counts['diverged']} diverged)")
     print(f"bare mujoco.rollout: {bare:6.1f} rollouts/s")
     print(f"ratio            : {ratio:8.3f}  (target >= 0.8; wall clock)")
+    print(f"per-round ratios : {' '.join(f'{r:.3f}' for r in round_ratios)}  (median {np.median(round_ratios):.3f})")
     print(f"CPU-time ratio   : {cpu_ratio:8.3f}  (bare CPU s / sweep CPU s: the overhead alone, whatever the load)")
     print(f"peak memory      : {peak:8.1f} MB (target < 1024)")
     print(f"store read       : {reads:8.0f} rows/s ({read_rows} rows in {read_rows / reads:.2f} s)")
@@ -153,6 +163,8 @@ def main() -> None:
         "sweep_rollouts_per_s": round(sweep_rate, 2), "bare_rollouts_per_s": round(bare, 2),
         "ratio": round(ratio, 4), "peak_memory_mb": round(peak, 1), "rollouts": n, "threads": args.workers,
         "nstep": scenario.task.nstep, "cpu_ratio": round(cpu_ratio, 4), "rounds": rounds,
+        "median_round_ratio": round(float(np.median(round_ratios)), 4),
+        "load_average_1min": [round(load_before, 2), round(os.getloadavg()[0], 2)],  # at start and end
         "store_read_rows_per_s": round(reads), "store_read_rows": read_rows,
         "date": datetime.now(timezone.utc).date().isoformat(),
     }))
