@@ -10,7 +10,7 @@ from sklearn.gaussian_process import GaussianProcessRegressor
 from sklearn.gaussian_process.kernels import ConstantKernel, Matern, WhiteKernel
 
 from gapgauge.compare.gp import ExactGP
-from gapgauge.compare.kernels import Matern52
+from gapgauge.compare.kernels import Matern52, WithFixedCovariance
 
 LENGTH_SCALES = [0.3, 0.7, 1.5]
 VARIANCE = 1.7
@@ -86,3 +86,37 @@ def test_fitted_hyperparameters_reach_at_least_sklearns_optimum() -> None:
     reference = GaussianProcessRegressor(kernel, alpha=0.0, n_restarts_optimizer=2, random_state=0).fit(X, y)
     ours = ExactGP(n_restarts=2, random_state=0).fit(X, y)
     assert ours.log_marginal_likelihood() >= reference.log_marginal_likelihood_value_ - 1e-3
+
+
+def test_exact_gp_posterior_covariance_equals_sklearn_gpr() -> None:
+    # sklearn's predict(return_cov=True) with the noise as alpha (latent covariance), normalised targets
+    X, y, X_test = _data()
+    reference = GaussianProcessRegressor(ConstantKernel(VARIANCE) * Matern(length_scale=LENGTH_SCALES, nu=2.5),
+                                         optimizer=None, alpha=NOISE, normalize_y=True).fit(X, y)
+    gp = ExactGP(Matern52(VARIANCE, LENGTH_SCALES), NOISE, normalize_y=True, optimize=False).fit(X, y)
+    cov = reference.predict(X_test, return_cov=True)[1]
+    np.testing.assert_allclose(gp.posterior_covariance(X_test), cov, atol=1e-8)
+    np.testing.assert_allclose(gp.posterior_covariance(X_test[:5], X_test[5:]), cov[:5, 5:], atol=1e-8)
+
+
+def test_a_fixed_covariance_term_leaves_the_likelihood_gradient_exact() -> None:
+    # the fixed term has no hyperparameters: the analytic gradient (R&W eq. 5.9) still matches scipy's
+    # finite differences, and the term shows in the prior variance
+    X, y, X_test = _data()
+    anchor = X[:6]
+
+    def fixed(A: np.ndarray, B: np.ndarray | None) -> np.ndarray:
+        B = A if B is None else B
+        return Matern52(0.5, 0.4)(A, anchor) @ Matern52(0.5, 0.4)(anchor, B)
+
+    def fixed_diag(A: np.ndarray) -> np.ndarray:
+        return np.einsum("ij,ij->i", Matern52(0.5, 0.4)(A, anchor), Matern52(0.5, 0.4)(A, anchor))
+
+    kernel = WithFixedCovariance(Matern52(VARIANCE, LENGTH_SCALES), fixed, fixed_diag, 2.0)
+    gp = ExactGP(kernel, NOISE, optimize=False).fit(X, y)
+    theta = gp.theta + np.array([0.1, -0.2, 0.1, 0.3, 0.2])
+    _, grad = gp.log_marginal_likelihood(theta, eval_gradient=True)
+    numeric = approx_fprime(theta, gp.log_marginal_likelihood, 1e-6)
+    np.testing.assert_allclose(grad, numeric, rtol=1e-4, atol=1e-4)
+    np.testing.assert_allclose(np.diag(kernel(X_test)), kernel.diag(X_test), rtol=1e-12)
+    assert np.all(kernel.diag(X_test) > VARIANCE)

@@ -78,3 +78,21 @@ def test_kmeans_plusplus_is_reproducible_and_picks_distinct_rows() -> None:
     b = kmeans_plusplus(X, 40, np.random.default_rng(7))
     np.testing.assert_array_equal(a, b)
     assert len(set(a.tolist())) == 40
+
+
+def test_sparse_posterior_covariance_with_inducing_points_at_the_data_equals_the_exact_one() -> None:
+    # Titsias (2009): with Z = X, K - Q + K_xu Sigma K_ux is the exact posterior covariance
+    # K_** - K_*X (K_XX + s^2 I)^-1 K_X*; reference: sklearn's exact GPR, predict(return_cov=True), with the
+    # noise as alpha so that its covariance is of the latent function. A cross block (two different sets)
+    # checks the off-diagonal form, the diagonal block checks it against predict's variance.
+    X, y, X_test = _data()
+    exact = GaussianProcessRegressor(ConstantKernel(1.3) * Matern(length_scale=LENGTH_SCALES, nu=2.5),
+                                     optimizer=None, alpha=0.05).fit(X, y)
+    sparse = SparseGP(Matern52(1.3, LENGTH_SCALES), 0.05, inducing=X, optimize=False, normalize_y=False,
+                      jitter=1e-12).fit(X, y)
+    reference = exact.predict(X_test, return_cov=True)[1]
+    # tolerance: the 1e-12 relative jitter on K_uu, amplified by its condition number (as above)
+    np.testing.assert_allclose(sparse.posterior_covariance(X_test[:8], X_test[8:]), reference[:8, 8:], atol=1e-6)
+    own = sparse.posterior_covariance(X_test)
+    np.testing.assert_allclose(own, reference, atol=1e-6)
+    np.testing.assert_allclose(np.sqrt(np.diag(own)), sparse.predict(X_test, return_std=True)[1], rtol=1e-9)

@@ -25,7 +25,7 @@ from typing import Any
 import numpy as np
 
 from .errors import ModelError, ScenarioError
-from .scenario import Scenario, load_scenario
+from .scenario import load_scenario
 
 SCENARIO_FILE = "push_recovery.toml"
 MODEL_FILE = "planar_body.xml"
@@ -155,21 +155,6 @@ def _figures_text(figures: dict[str, Any]) -> str:
     return "; ".join(parts)
 
 
-def _save(store: Any, kind: str, scenario: Scenario, result: dict[str, Any]) -> None:
-    """Keep an analysis result in the store, where the report reads it (the results contract)."""
-    store.save_model(kind, scenario.content_hash, params=result)
-
-
-def _trial_arrays(scenario: Scenario, store: Any) -> tuple[np.ndarray, dict[str, np.ndarray]]:
-    trials = store.trials(scenario.content_hash)
-    params = np.array([[t.params[n] for n in scenario.parameter_names] for t in trials], dtype=float)
-    features = {
-        name: np.array([float(t.features.get(name, np.nan)) for t in trials])
-        for name in scenario.features.names
-    }
-    return params, features
-
-
 def run_demo(
     out_dir: str | Path = "gapgauge-demo", quick: bool = False, seed: int = 0, progress: bool = True
 ) -> DemoResult:
@@ -285,9 +270,7 @@ def run_demo(
 
     def shift_step(step: DemoStep) -> None:
         assess_shift = _api("assess_shift")
-        report = assess_shift(scenario, store, seed=seed)
-        result = as_json(report)
-        _save(store, "shift", scenario, result)
+        result = as_json(assess_shift(scenario, store, seed=seed))  # stores itself for the report
         verdicts = [f["verdict"] for f in result["features"]]
         step.figures = {v: verdicts.count(v) for v in dict.fromkeys(verdicts)}
         step.figures["MMD p"] = result["joint"].get("mmd_p_value")
@@ -312,7 +295,6 @@ def run_demo(
         except ModelError as exc:  # shown, not hidden: the report's proposals section will say what to run
             step.figures = {"no proposal": str(exc)}
             return
-        _save(store, "proposals", scenario, result)
         risks = [float(p.get("fall_risk") or 0.0) for p in result["proposals"]]
         step.figures = {"proposed": len(risks), "max fall risk": max(risks) if risks else None}
 
@@ -326,28 +308,20 @@ def run_demo(
                 progress=progress,
                 **({"draws": 16, "max_trials": 30} if quick else {}),
             )
-        )
-        _save(store, "budget", scenario, result)
+        )  # plan_budget stores its result for the report
         step.figures = {
             "P80 with prior": result["with_prior"].get("p80"),
             "P80 cold start": result["cold_start"].get("p80"),
         }
 
     def calibrate_step(step: DemoStep) -> None:
-        calibrate = _api("calibrate")
-        from .sim.rollout import simulate
-
-        params, features = _trial_arrays(scenario, store)
-
-        def simulator(p: np.ndarray, physics: np.ndarray) -> Any:
-            return simulate(scenario, p, physics)
+        _api("calibrate")  # the step is skipped, with a note, if calibration is not installed
+        from .workflow import calibrate_from_store
 
         extra = {"generations": 4, "popsize": 2, "spread_draws": 4} if quick else {}
-        result = calibrate(scenario, params, features, None, simulator, seed=seed, progress=progress, **extra)
         overlay = copies["scenario"].with_name(copies["scenario"].stem + ".calibrated.toml")
-        overlay.write_text(result.overlay_text(overlay), encoding="utf-8")
-        result.overlay_path = overlay
-        _save(store, "calibration", scenario, as_json(result))
+        # writes the overlay, checks that it loads, and stores the result for the report
+        result = calibrate_from_store(scenario, store, overlay_path=overlay, seed=seed, progress=progress, **extra)
         step.figures = {
             p.name: f"{p.estimate:.3g} [{p.interval[0]:.3g}, {p.interval[1]:.3g}]"
             + ("" if p.identifiable else " (not pinned)")

@@ -8,8 +8,9 @@ each tuned by the proposal policy of :mod:`gapgauge.compare.propose`:
 2. Surfaces: joint draws of the hardware objective and the margin of stability on the candidates from
    the fitted posterior (the multi-fidelity prior of :mod:`gapgauge.compare.prior` and the fall model).
    Each draw is exact for the candidate set: the posterior covariance on all candidates (Kennedy and
-   O'Hagan 2000: ``rho^2 Cov_low + Cov_delta``, the discrepancy's covariance including its basis
-   coefficients' uncertainty, Rasmussen and Williams 2006 eq. 2.42) is factorised by Cholesky with
+   O'Hagan 2000: the hardware-level GP's, whose prior covariance is ``rho0^2 C_low + k_delta`` with the
+   simulation level's posterior ``C_low``, including the basis coefficients' uncertainty, Rasmussen and
+   Williams 2006 eq. 2.42) is factorised by Cholesky with
    the least jitter that works; the marginal sds are set to the models' own ``predict`` sds, so a
    draw's spread at each point is exactly what ``gapgauge propose`` sees. The objective and the margin
    are separate GPs with independent posteriors, so a draw is a pair of independent draws.
@@ -646,20 +647,18 @@ def posterior_covariance(model: ExactGP | SparseGP, X: np.ndarray, basis: np.nda
 def multifidelity_belief(model: MultiFidelityGP, X: np.ndarray, n_known: int = 0) -> tuple[Belief, float]:
     """The hardware-level belief of a fitted :class:`MultiFidelityGP` at ``X (s x dim)`` (unit cube).
 
-    Covariance ``(E[rho^2] Cov_low + Cov_delta) y_std^2`` (Kennedy and O'Hagan 2000, with rho's
-    posterior second moment as in :meth:`MultiFidelityGP.predict`), then rescaled so its diagonal is
-    ``predict``'s variance exactly. Returns the belief (noise: the hardware noise) and the largest
-    relative difference between the two sds before rescaling (a check; 0 up to rounding).
+    Covariance: the hardware-level GP's posterior covariance ``y_std^2 Cov_high``, its prior covariance
+    ``rho0^2 C_low + k_delta`` (plus the basis prior) already holding the simulation level's posterior
+    ``C_low`` (Kennedy and O'Hagan 2000; see :class:`MultiFidelityGP`), so it is not added again; then
+    rescaled so its diagonal is ``predict``'s variance exactly. Returns the belief (noise: the hardware
+    noise) and the largest relative difference between the two sds before rescaling (a check; 0 up to
+    rounding).
     """
     mean, sd = model.predict(X, return_std=True)
-    mu_low, _ = model.predict_low(X, return_std=True)
+    mu_low = model.predict_low(X)
     mu_low_std = (mu_low - model.y_mean_) / model.y_std_
     basis = model._basis(X, mu_low_std)
-    rho_second_moment = model.rho_**2 + model.rho_sd_**2
-    cov = posterior_covariance(model.delta_, X, basis) + rho_second_moment * posterior_covariance(
-        model.low_, X
-    ) / model.y_std_**2
-    cov = cov * model.y_std_**2
+    cov = posterior_covariance(model.delta_, X, basis) * model.y_std_**2
     cov = 0.5 * (cov + cov.T)
     own = np.sqrt(np.maximum(np.diag(cov), 0.0))
     check = float(np.max(np.abs(own - sd) / np.maximum(sd, 1e-12))) if sd.size else 0.0

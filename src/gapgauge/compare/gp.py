@@ -30,7 +30,7 @@ from scipy.optimize import minimize
 from threadpoolctl import threadpool_limits
 
 from ..errors import ModelError
-from .kernels import Matern52, default_length_scale
+from .kernels import Matern52, WithFixedCovariance, default_length_scale
 
 CHOLESKY_LOWER = True
 LOG2PI = np.log(2.0 * np.pi)
@@ -67,7 +67,8 @@ class ExactGP:
     """Exact GP regression with a Matern 5/2 ARD kernel (Rasmussen and Williams, Algorithm 2.1).
 
     Parameters:
-        kernel: the covariance (its hyperparameters are the initial values when optimising).
+        kernel: the covariance (its hyperparameters are the initial values when optimising); a
+            :class:`~gapgauge.compare.kernels.WithFixedCovariance` adds a fixed covariance term.
         noise: Gaussian noise variance (standardised output units squared).
         alpha: fixed extra variance on the diagonal, scalar or ``(n,)`` (as in scikit-learn).
         normalize_y: standardise the targets (mean 0, sd 1) before fitting.
@@ -80,7 +81,7 @@ class ExactGP:
 
     def __init__(
         self,
-        kernel: Matern52 | None = None,
+        kernel: Matern52 | WithFixedCovariance | None = None,
         noise: float = 1e-2,
         *,
         alpha: float | np.ndarray = 0.0,
@@ -123,11 +124,13 @@ class ExactGP:
         if (basis is None) != (self.basis_prior is None):
             raise ValueError("give basis values exactly when basis_prior is set")
         dim = X.shape[1]
-        self.kernel_ = (
-            Matern52(1.0, np.full(dim, default_length_scale(dim)))
-            if self.kernel is None
-            else Matern52(self.kernel.variance, np.broadcast_to(self.kernel.length_scale, (dim,)))
-        )
+        if self.kernel is None:
+            self.kernel_ = Matern52(1.0, np.full(dim, default_length_scale(dim)))
+        else:
+            # a copy (any kind of kernel), with the length-scales broadcast to the inputs' dimension
+            length_scale = np.broadcast_to(self.kernel.length_scale, (dim,))
+            self.kernel_ = self.kernel.clone_with_theta(np.concatenate([[np.log(self.kernel.variance)],
+                                                                        np.log(length_scale)]))
         self.noise_ = float(self.noise)
         if self.normalize_y and y.size > 0:
             self._y_mean = float(np.mean(y))
@@ -288,6 +291,27 @@ class ExactGP:
         var = prior_var - np.einsum("ij,ij->j", V, V)
         var = np.maximum(var, 0.0) + (self.noise_ if observation else 0.0)
         return mean, np.sqrt(var) * self._y_std
+
+    def posterior_covariance(self, X: np.ndarray, Z: np.ndarray | None = None) -> np.ndarray:
+        """Posterior covariance ``(n x m)`` of the latent function between ``X (n x dim)`` and
+        ``Z (m x dim)`` (``Z = X`` if None), in the units of ``y`` squared; models without basis functions.
+
+        ``k(X, Z) - V_X^T V_Z`` with ``V = L \\ k(X_train, .)`` (Rasmussen and Williams 2006, eq. 2.24;
+        Algorithm 2.1 line 5 in covariance form).
+        """
+        if self.basis_train_ is not None:
+            raise ValueError("posterior_covariance is for models without basis functions")
+        X = np.atleast_2d(np.asarray(X, dtype=float))
+        cov = self.kernel_(X, Z)
+        if self.L_.size:
+            VX = solve_triangular(self.L_, self.kernel_(self.X_train_, X), lower=CHOLESKY_LOWER, check_finite=False)
+            VZ = (
+                VX
+                if Z is None
+                else solve_triangular(self.L_, self.kernel_(self.X_train_, Z), lower=CHOLESKY_LOWER, check_finite=False)
+            )
+            cov = cov - VX.T @ VZ
+        return cov * self._y_std**2
 
     # ---- storage --------------------------------------------------------------------------
     def to_state(self) -> tuple[dict[str, Any], dict[str, np.ndarray]]:

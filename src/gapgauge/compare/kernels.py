@@ -120,3 +120,81 @@ class Matern52:
 
     def get_params(self) -> dict:
         return {"variance": self.variance, "length_scale": self.length_scale.tolist()}
+
+
+class WithFixedCovariance:
+    """A Matern 5/2 kernel plus a fixed, hyperparameter-free covariance: ``k(x, z) = base(x, z) +
+    scale * fixed(x, z)``.
+
+    The multi-fidelity prior's hardware level uses it for ``rho0^2 C_low(x, z)``, the simulation
+    level's posterior covariance (Kennedy and O'Hagan 2000; Le Gratiet and Garnier 2014). The
+    hyperparameters, their order and the gradients are the base kernel's: the fixed term does not depend
+    on them (zero gradient), so :class:`~gapgauge.compare.gp.ExactGP` optimises its marginal likelihood
+    unchanged.
+
+    Parameters:
+        base: the Matern 5/2 kernel whose hyperparameters are fitted.
+        fixed: ``fixed(X (n x dim), Z (m x dim) or None) -> (n x m)``, a positive semi-definite
+            covariance (``Z = X`` if None).
+        fixed_diag: ``fixed_diag(X (n x dim)) -> (n,)``, its diagonal.
+        scale: non-negative factor on the fixed term.
+    """
+
+    def __init__(self, base: Matern52, fixed, fixed_diag, scale: float = 1.0, _cache: dict | None = None):
+        self.base = base
+        self.fixed = fixed
+        self.fixed_diag = fixed_diag
+        self.scale = float(scale)
+        # the training block is asked for at every optimiser step: keep the last one (by identity)
+        self._cache = {} if _cache is None else _cache
+
+    @property
+    def variance(self) -> float:
+        return self.base.variance
+
+    @property
+    def length_scale(self) -> np.ndarray:
+        return self.base.length_scale
+
+    @property
+    def n_dims(self) -> int:
+        return self.base.n_dims
+
+    @property
+    def theta(self) -> np.ndarray:
+        return self.base.theta
+
+    @theta.setter
+    def theta(self, theta: np.ndarray) -> None:
+        self.base.theta = theta
+
+    def clone_with_theta(self, theta: np.ndarray) -> WithFixedCovariance:
+        return WithFixedCovariance(self.base.clone_with_theta(theta), self.fixed, self.fixed_diag, self.scale,
+                                   self._cache)
+
+    def _fixed(self, X: np.ndarray, Z: np.ndarray | None) -> np.ndarray:
+        hit = self._cache.get("key")
+        if hit is not None and hit[0] is X and hit[1] is Z:
+            return self._cache["value"]
+        value = self.fixed(X, Z)
+        self._cache.update(key=(X, Z), value=value)
+        return value
+
+    def __call__(self, X: np.ndarray, Z: np.ndarray | None = None) -> np.ndarray:
+        """Covariance matrix ``(n x m)`` between ``X (n x dim)`` and ``Z (m x dim)`` (``Z = X`` if None)."""
+        return self.base(X, Z) + self.scale * self._fixed(X, Z)
+
+    def diag(self, X: np.ndarray) -> np.ndarray:
+        """``k(x, x)`` for each row of ``X (n x dim)``."""
+        return self.base.diag(X) + self.scale * self.fixed_diag(X)
+
+    def gradient_contract(self, X: np.ndarray, Z: np.ndarray | None, G: np.ndarray) -> np.ndarray:
+        """The base kernel's contraction: the fixed term has no hyperparameters."""
+        return self.base.gradient_contract(X, Z, G)
+
+    def gradient(self, X: np.ndarray) -> np.ndarray:
+        return self.base.gradient(X)
+
+    def get_params(self) -> dict:
+        """The base kernel's parameters: the fixed term is rebuilt by its owner, not stored here."""
+        return self.base.get_params()

@@ -18,17 +18,25 @@ What it adds, because hardware trials are few (2 to 10):
   trend in the parameters (Le Gratiet and Garnier's regression part of the discrepancy) with slopes
   ~ N(0, 2^2 / dim), both in simulation-sd units over the unit cube; log-normal priors on the
   discrepancy's scale (median 0.5 simulation sd), length-scales (median
-  :func:`~gapgauge.compare.kernels.default_length_scale`) and the hardware noise (median the
-  simulation's own noise: physics randomisation is the best guess of trial-to-trial spread); the
-  discrepancy's hyperparameters are the maximum a posteriori;
-- the simulation level's own uncertainty at the trial parameters enters the hardware level as
-  extra per-trial variance ``E[rho^2] var_low(x_i)`` (at rho's prior second moment, which keeps rho a
-  linear coefficient);
+  :func:`~gapgauge.compare.kernels.default_length_scale`) and the hardware noise (median sd
+  ``HARDWARE_NOISE_FRACTION`` of the simulation's own noise sd, see there); the discrepancy's
+  hyperparameters are the maximum a posteriori;
+- the simulation level's own uncertainty is a GP, not noise (Kennedy and O'Hagan 2000; Le Gratiet and
+  Garnier 2014 condition the high level on the low level's posterior): ``low = mu_low + e_low`` with
+  ``e_low ~ GP(0, C_low)``, ``C_low`` the simulation level's POSTERIOR covariance (exact GP: R&W eq.
+  2.24; sparse GP: Titsias 2009, see :meth:`SparseGP.posterior_covariance`). The hardware level's prior
+  covariance is therefore ``rho0^2 C_low(x, x') + k_delta(x, x')`` (plus the basis coefficients' prior),
+  with ``rho0^2`` a plug-in value of ``E[rho^2]`` that keeps rho a linear coefficient of the mean: the
+  prior's ``E[rho^2]`` on a first pass, then (with hardware trials) the posterior ``E[rho^2]`` of that
+  pass, with the discrepancy's hyperparameters refitted once. A hardware trial at ``x`` thus reduces
+  the simulation level's part of the uncertainty at ``x`` too, as any GP observation does (R&W eq.
+  2.26): trying a parameter set makes the model sure of it, and expected improvement moves on;
 - with no hardware trials the model is the simulation level plus the discrepancy prior: rho at its
   prior mean, the discrepancy at its prior scale.
 
-The predictive mean is ``E[rho] mu_low(x) + mu_delta(x)`` and the variance
-``E[rho^2] var_low(x) + var_delta(x)`` (the latter including the coefficients' uncertainty).
+The predictive mean is ``E[rho] mu_low(x) + mu_delta(x)`` and the variance the hardware-level GP's
+posterior variance, which holds ``rho0^2 C_low`` conditioned on the trials, the discrepancy and the
+coefficients' uncertainty.
 Outputs are standardised with the simulation level's mean and sd; inputs are in the unit cube.
 """
 
@@ -41,7 +49,7 @@ from scipy.stats import norm
 
 from ..errors import ModelError
 from .gp import ExactGP
-from .kernels import Matern52, default_length_scale
+from .kernels import Matern52, WithFixedCovariance, default_length_scale
 from .sparse import SparseGP
 
 # above this many simulation points the simulation level is the sparse GP: the exact GP's n^3 fit
@@ -64,6 +72,14 @@ TREND_PRIOR_SD = 2.0
 DISCREPANCY_SD_PRIOR = (0.5, 1.0)  # median (simulation-sd units), sd of its log
 LENGTH_SCALE_LOG_SD = 1.0
 NOISE_LOG_SD = 1.5  # sd of the log of the hardware noise sd
+# Median of the hardware noise sd as a fraction of the simulation level's noise sd. The simulation's noise is
+# its physics randomisation (mass, friction, servo strength and lag, push size drawn per rollout): the spread
+# over a population of robots and pushes. Trials on ONE robot repeat its physics; their scatter is the
+# sensors' and the push's, much smaller (the stand-in robots of benchmarks/transfer_standin.py: objective
+# noise sd about 0.03 against 0.42 for the simulation level of a 1,024-rollout push_recovery sweep). A third
+# is a cautious median; the log-normal prior (NOISE_LOG_SD) still lets the data move it by a factor of e^1.5
+# either way.
+HARDWARE_NOISE_FRACTION = 1.0 / 3.0
 NOISE_FLOOR = 1e-4  # standardised variance: the least noise median a noise-free simulation implies
 
 
@@ -144,7 +160,7 @@ class MultiFidelityGP:
     def _hyperprior(self) -> np.ndarray:
         dim = self.dim_
         median_sd, log_sd = self.discrepancy_sd_prior
-        noise_median = max(self.low_noise_variance(), NOISE_FLOOR)
+        noise_median = max(HARDWARE_NOISE_FRACTION**2 * self.low_noise_variance(), NOISE_FLOOR)
         rows = [[2.0 * np.log(median_sd), 2.0 * log_sd]]
         rows += [[np.log(default_length_scale(dim)), LENGTH_SCALE_LOG_SD]] * dim
         rows += [[np.log(noise_median), 2.0 * NOISE_LOG_SD]]
@@ -167,36 +183,58 @@ class MultiFidelityGP:
             var += [self.trend_prior_sd**2 / self.dim_] * self.dim_
         return np.array(mean), np.diag(var)
 
+    def _low_covariance_kernel(self, base: Matern52, rho0_sq: float) -> WithFixedCovariance:
+        """``base + rho0^2 C_low`` in standardised units: the hardware level's prior covariance."""
+        scale = self.y_std_**2
+
+        def fixed(X: np.ndarray, Z: np.ndarray | None) -> np.ndarray:
+            return self.low_.posterior_covariance(X, Z) / scale
+
+        def fixed_diag(X: np.ndarray) -> np.ndarray:
+            return self._low_standardised(X)[1] ** 2
+
+        return WithFixedCovariance(base, fixed, fixed_diag, rho0_sq)
+
     def fit_high(self, X_high: np.ndarray, y_high: np.ndarray, optimize: bool = True) -> MultiFidelityGP:
         """(Re)fit the hardware level only, keeping the simulation level.
 
         ``X_high (k x dim)`` unit cube, ``y_high (k,)`` objective units; ``k`` may be 0. With
-        ``optimize`` false the discrepancy's hyperparameters stay as fitted before (kriging believer).
+        ``optimize`` false the discrepancy's hyperparameters and ``rho0`` stay as fitted before (kriging
+        believer). With it, ``rho0^2`` is rho's prior second moment on a first pass and, given hardware
+        trials, rho's posterior second moment from that pass on a second one (module docstring).
         """
         X_high = np.asarray(X_high, dtype=float).reshape(-1, self.dim_)
         y_high = np.asarray(y_high, dtype=float).ravel()
-        mu, sd = self._low_standardised(X_high)
-        rho_mean, rho_sd = self.rho_prior
-        second_moment = rho_mean**2 + rho_sd**2
+        mu, _ = self._low_standardised(X_high)
+        basis = self._basis(X_high, mu)
+        targets = (y_high - self.y_mean_) / self.y_std_
         hyperprior = self._hyperprior()
         if optimize or not hasattr(self, "delta_"):
+            rho_mean, rho_sd = self.rho_prior
+            rho0_sq = rho_mean**2 + rho_sd**2
             kernel = Matern52(np.exp(hyperprior[0, 0]), np.exp(hyperprior[1:-1, 0]))
             noise = float(np.exp(hyperprior[-1, 0]))
+            passes = 2 if optimize and y_high.size > 0 else 1
         else:
-            kernel, noise = self.delta_.kernel_, self.delta_.noise_
-        delta = ExactGP(
-            kernel,
-            noise,
-            alpha=second_moment * sd**2,
-            normalize_y=False,
-            optimize=optimize and y_high.size > 0,
-            n_restarts=self.n_restarts,
-            hyperprior=hyperprior,
-            basis_prior=self._basis_prior(),
-            random_state=self._seed_high,
-        )
-        basis = self._basis(X_high, mu)
-        self.delta_ = delta.fit(X_high, (y_high - self.y_mean_) / self.y_std_, basis=basis)
+            rho0_sq = self.rho0_sq_
+            kernel, noise = self.delta_.kernel_.base, self.delta_.noise_
+            passes = 1
+        for step in range(passes):
+            if step == 1:
+                rho0_sq = float(self.delta_.coef_[0] ** 2 + self.delta_.coef_cov_[0, 0])
+                kernel, noise = self.delta_.kernel_.base, self.delta_.noise_
+            delta = ExactGP(
+                self._low_covariance_kernel(kernel, rho0_sq),
+                noise,
+                normalize_y=False,
+                optimize=optimize and y_high.size > 0,
+                n_restarts=self.n_restarts,
+                hyperprior=hyperprior,
+                basis_prior=self._basis_prior(),
+                random_state=self._seed_high,
+            )
+            self.delta_ = delta.fit(X_high, targets, basis=basis)
+        self.rho0_sq_ = rho0_sq
         self.X_high_, self.y_high_ = X_high, y_high
         return self
 
@@ -242,17 +280,16 @@ class MultiFidelityGP:
     ) -> np.ndarray | tuple[np.ndarray, np.ndarray]:
         """Hardware-level mean (and sd) at ``X (n x dim)`` (unit cube), in objective units.
 
-        The sd is of the latent hardware function; with ``observation`` the hardware noise is added.
+        The sd is of the latent hardware function (the hardware-level GP's posterior sd, its prior
+        covariance holding ``rho0^2 C_low``); with ``observation`` the hardware noise is added.
         """
         X = np.atleast_2d(np.asarray(X, dtype=float))
-        mu, sd = self._low_standardised(X)
+        mu, _ = self._low_standardised(X)
         basis = self._basis(X, mu)
         if not return_std:
             return self.delta_.predict(X, basis=basis) * self.y_std_ + self.y_mean_
-        mean, delta_sd = self.delta_.predict(X, return_std=True, basis=basis, observation=observation)
-        rho_second_moment = self.rho_**2 + self.rho_sd_**2
-        var = delta_sd**2 + rho_second_moment * sd**2
-        return mean * self.y_std_ + self.y_mean_, np.sqrt(var) * self.y_std_
+        mean, sd = self.delta_.predict(X, return_std=True, basis=basis, observation=observation)
+        return mean * self.y_std_ + self.y_mean_, sd * self.y_std_
 
     def predict_low(
         self, X: np.ndarray, return_std: bool = False, observation: bool = False
@@ -280,6 +317,7 @@ class MultiFidelityGP:
             "n_restarts": self.n_restarts,
             "trend_prior_sd": self.trend_prior_sd,
             "seed_high": self._seed_high,
+            "rho0_sq": self.rho0_sq_,
             "y_mean": self.y_mean_,
             "y_std": self.y_std_,
             "dim": self.dim_,
@@ -306,10 +344,16 @@ class MultiFidelityGP:
         delta_arrays = {k[6:]: v for k, v in arrays.items() if k.startswith("delta.")}
         low_cls = SparseGP if params["low"]["model"] == "SparseGP" else ExactGP
         model.low_ = low_cls.from_state(params["low"], low_arrays)
-        model.delta_ = ExactGP.from_state(params["delta"], delta_arrays)
         model._seed_high = int(params["seed_high"])
         model.y_mean_, model.y_std_ = float(params["y_mean"]), float(params["y_std"])
         model.dim_ = int(params["dim"])
+        if "rho0_sq" not in params:
+            raise ModelError("the stored prior was fitted by an older gapgauge (no rho0); refit it with gapgauge prior")
+        model.rho0_sq_ = float(params["rho0_sq"])
+        model.delta_ = ExactGP.from_state(params["delta"], delta_arrays)
+        # the stored factor L is of the full covariance; C_low is rebuilt from the stored simulation level
+        model.delta_.kernel_ = model._low_covariance_kernel(model.delta_.kernel_, model.rho0_sq_)
+        model.delta_.kernel = model.delta_.kernel_
         model.X_high_ = np.asarray(arrays["X_high"]).reshape(-1, model.dim_)
         model.y_high_ = np.asarray(arrays["y_high"])
         return model

@@ -338,6 +338,26 @@ class SparseGP:
         var = np.maximum(var, 0.0) + (self.noise_ if observation else 0.0)
         return mean, np.sqrt(var) * self._y_std
 
+    def posterior_covariance(self, X: np.ndarray, Z: np.ndarray | None = None) -> np.ndarray:
+        """Posterior covariance ``(n x m)`` of the latent function between ``X (n x dim)`` and
+        ``Z (m x dim)`` (``Z = X`` if None), in the units of the fitted ``y`` squared.
+
+        Titsias (2009): ``k(x, z) - Q(x, z) + k_u(x)^T Sigma k_u(z)`` with ``Q(x, z) = k_u(x)^T K_uu^-1
+        k_u(z)`` and ``Sigma = (K_uu + K_uf K_fu / noise)^-1 = L_uu^-T L_B^-T L_B^-1 L_uu^-1`` (from the
+        stored factors, since ``K_uu + K_uf K_fu / noise = L_uu (I + A A^T) L_uu^T``); its diagonal is
+        :meth:`predict`'s variance.
+        """
+        X = np.atleast_2d(np.asarray(X, dtype=float))
+        t1x = solve_triangular(self.L_uu_, self.kernel_(self.inducing_, X), lower=True, check_finite=False)
+        t2x = solve_triangular(self.L_B_, t1x, lower=True, check_finite=False)
+        if Z is None:
+            t1z, t2z = t1x, t2x
+        else:
+            t1z = solve_triangular(self.L_uu_, self.kernel_(self.inducing_, Z), lower=True, check_finite=False)
+            t2z = solve_triangular(self.L_B_, t1z, lower=True, check_finite=False)
+        cov = self.kernel_(X, Z) - t1x.T @ t1z + t2x.T @ t2z
+        return cov * self._y_std**2
+
     # ---- storage --------------------------------------------------------------------------
     def to_state(self) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
         params = {
