@@ -391,10 +391,12 @@ def decide(data: ReportData) -> Decision:
     worse_loo = mf is not None and hw is not None and mf > hw
     if worse_loo:
         reasons.append(f"leave-one-out RMSE with the prior {mf:.3g} is worse than hardware alone {hw:.3g}")
+    offset = counts["offset_order_kept"] > counts["carries_over"]
+    carry = "Simulation keeps the order of parameter sets, with an offset" if offset else "Simulation carries over"
     if weak_link or worse_loo:
         reasons.append("the simulation level does not yet inform hardware")
         return Decision(
-            "Simulation carries over feature by feature, but the prior does not help yet",
+            f"{carry}, but the prior does not help yet",
             "caution",
             "Tune on hardware with a cold-start budget in mind"
             + ("; calibrate the simulator first, it may restore the link" if calibration is None else "")
@@ -404,9 +406,7 @@ def decide(data: ReportData) -> Decision:
         )
     proposals = (r.get("proposals") or {}).get("proposals") or []
     budget = r.get("budget")
-    verdict = "Simulation carries over" + (
-        " with an offset" if counts["offset_order_kept"] > counts["carries_over"] else ""
-    )
+    verdict = carry
     if not proposals:
         return Decision(
             verdict,
