@@ -20,6 +20,7 @@ import hashlib
 import json
 import math
 import sys
+from collections.abc import Iterator
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -672,6 +673,22 @@ def _success(r: _Reader) -> dict[str, float]:
     return out
 
 
+def _channel_tables(r: _Reader) -> Iterator[tuple[str, _Reader, str]]:
+    """Each ``channel = {..., unit = ...}`` entry of a hardware table, with its unit checked against the
+    channel's dimension; the caller reads the other keys before the entry is finished."""
+    for channel in list(r.table):
+        if channel not in CHANNELS:
+            raise r.fail(channel, "is not a trajectory channel", f"use channels from: {', '.join(CHANNELS)}")
+        c = r.table_at(channel, default_empty=False)
+        unit = c.get("unit", str)
+        dim = CHANNELS[channel][0]
+        if unit not in UNITS or UNITS[unit][0] != dim:
+            raise c.fail("unit", f"{unit!r} is not a unit of {dim}", f"use one of {', '.join(units_for(dim))}")
+        yield channel, c, unit
+        c.finish()
+    r.finish()
+
+
 def _hardware(r: _Reader) -> Hardware:
     time_r = r.table_at("time", default_empty=False)
     time_column = time_r.get("column", str)
@@ -679,30 +696,10 @@ def _hardware(r: _Reader) -> Hardware:
     if time_unit not in units_for("time"):
         raise time_r.fail("unit", f"unknown time unit {time_unit!r}", f"use one of {', '.join(units_for('time'))}")
     time_r.finish()
-    cols_r = r.table_at("columns", default_empty=False)
-    columns = []
-    for channel in list(cols_r.table):
-        if channel not in CHANNELS:
-            raise cols_r.fail(channel, "is not a trajectory channel", f"use channels from: {', '.join(CHANNELS)}")
-        c = cols_r.table_at(channel, default_empty=False)
-        unit = c.get("unit", str)
-        dim = CHANNELS[channel][0]
-        if unit not in UNITS or UNITS[unit][0] != dim:
-            raise c.fail("unit", f"{unit!r} is not a unit of {dim}", f"use one of {', '.join(units_for(dim))}")
-        columns.append(ColumnMap(channel, c.get("column", str), unit))
-        c.finish()
-    bag_r = r.table_at("bag")
-    bag = []
-    for channel in list(bag_r.table):
-        if channel not in CHANNELS:
-            raise bag_r.fail(channel, "is not a trajectory channel", f"use channels from: {', '.join(CHANNELS)}")
-        c = bag_r.table_at(channel, default_empty=False)
-        unit = c.get("unit", str)
-        dim = CHANNELS[channel][0]
-        if unit not in UNITS or UNITS[unit][0] != dim:
-            raise c.fail("unit", f"{unit!r} is not a unit of {dim}", f"use one of {', '.join(units_for(dim))}")
-        bag.append(BagChannel(channel, c.get("topic", str), c.get("field", str), unit))
-        c.finish()
+    columns = [ColumnMap(channel, c.get("column", str), unit)
+               for channel, c, unit in _channel_tables(r.table_at("columns", default_empty=False))]
+    bag = [BagChannel(channel, c.get("topic", str), c.get("field", str), unit)
+           for channel, c, unit in _channel_tables(r.table_at("bag"))]
     plaus_r = r.table_at("plausible")
     plausible = {}
     for channel in list(plaus_r.table):

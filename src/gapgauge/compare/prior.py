@@ -32,6 +32,7 @@ import numpy as np
 
 from ..errors import GapgaugeError, ModelError
 from ..scenario import Scenario
+from ..store.codec import jsonable
 from .fall import FallModel
 from .gp import ExactGP
 from .kernels import Matern52, default_length_scale
@@ -124,7 +125,7 @@ class PriorFit:
 def write_json(path: str | Path, data: dict[str, Any]) -> None:
     """Write ``data`` as indented JSON; an unwritable path is a user error."""
     try:
-        Path(path).write_text(json.dumps(_jsonable(data), indent=2) + "\n", encoding="utf-8")
+        Path(path).write_text(json.dumps(jsonable(data), indent=2) + "\n", encoding="utf-8")
     except OSError as exc:
         raise GapgaugeError(f"{path}: cannot write the JSON ({exc.strerror}); pick another path") from None
 
@@ -362,7 +363,7 @@ def _to_state(fit: PriorFit) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
         fall_params, fall_arrays = fit.fall_model.to_state()
         params["fall"] = fall_params
         arrays.update({f"fall.{k}": np.asarray(v) for k, v in fall_arrays.items()})
-    return _jsonable(params), arrays
+    return jsonable(params), arrays
 
 
 def load_prior(scenario: Scenario, store: Any) -> PriorFit:
@@ -408,18 +409,6 @@ def load_prior(scenario: Scenario, store: Any) -> PriorFit:
         seed=int(s["seed"]),
         notes=list(s["notes"]),
     )
-
-
-def _jsonable(value: Any) -> Any:
-    if isinstance(value, dict):
-        return {str(k): _jsonable(v) for k, v in value.items()}
-    if isinstance(value, (list, tuple)):
-        return [_jsonable(v) for v in value]
-    if isinstance(value, np.ndarray):
-        return value.tolist()
-    if isinstance(value, (np.floating, np.integer, np.bool_)):
-        return value.item()
-    return value
 
 
 def _progress(enabled: bool):

@@ -24,6 +24,7 @@ from .. import __version__
 from ..errors import StoreError
 from ..records import RolloutBatch, TrialRecord
 from ..scenario import Scenario
+from ..store.codec import jsonable
 
 RESULT_KINDS = ("shift", "prior", "proposals", "budget", "calibration")
 DEFAULT_STORE_NAME = "gapgauge.sqlite"
@@ -454,22 +455,6 @@ def section_statuses(data: ReportData) -> list[SectionStatus]:
     ]
 
 
-def _jsonable(value: Any) -> Any:
-    if isinstance(value, dict):
-        return {str(k): _jsonable(v) for k, v in value.items()}
-    if isinstance(value, (list, tuple)):
-        return [_jsonable(v) for v in value]
-    if isinstance(value, np.ndarray):
-        return _jsonable(value.tolist())
-    if isinstance(value, np.generic):
-        return _jsonable(value.item())
-    if isinstance(value, float) and not math.isfinite(value):
-        return None
-    if isinstance(value, (str, int, float, bool)) or value is None:
-        return value
-    return str(value)
-
-
 def sweep_summary(data: ReportData) -> dict[str, Any]:
     batch = data.rollouts
     if batch is None:
@@ -498,7 +483,7 @@ def summary_json(
     budget = data.results.get("budget")
     proposals = (data.results.get("proposals") or {}).get("proposals") or []
     seeds = sorted({r.get("seed") for r in data.runs if r.get("seed") is not None})
-    return _jsonable(
+    return jsonable(
         {
             "tool_version": __version__,
             "generated_at": data.generated_at,

@@ -26,7 +26,8 @@ _TIME_KEY = "__t__"
 
 
 def jsonable(value: Any) -> Any:
-    """Plain JSON types from numpy scalars/arrays, dicts and sequences; NaN and inf become None."""
+    """Plain JSON types from numpy scalars/arrays, dicts and sequences; NaN and inf become None, other
+    objects (paths) their text."""
     if isinstance(value, dict):
         return {str(k): jsonable(v) for k, v in value.items()}
     if isinstance(value, (list, tuple)):
@@ -37,7 +38,9 @@ def jsonable(value: Any) -> Any:
         return jsonable(value.item())
     if isinstance(value, float) and not math.isfinite(value):
         return None
-    return value
+    if isinstance(value, (str, int, float, bool)) or value is None:
+        return value
+    return str(value)  # paths and other plain objects read back as their text
 
 
 def dumps(value: Any) -> str:
