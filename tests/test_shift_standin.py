@@ -60,6 +60,28 @@ def test_heavy_slippery_standin_flags_the_joint_torque(tmp_path, heavy_case):
     assert torque.verdict != "carries_over", torque.reason
 
 
+def test_heavy_slippery_standin_flags_the_work_that_grows_with_the_mass(heavy_case):
+    # Physics: positive work of the joints (lifting and stopping the trunk) scales with the mass moved; a
+    # trunk 15% heavier than nominal, outside the randomised 0.9-1.1, must not read as carrying over.
+    scenario, store, _ = heavy_case
+    report = gapgauge.assess_shift(scenario, store, seed=0)
+    work = report.feature("positive_work")
+    assert work.verdict != "carries_over", work.reason
+
+
+def test_heavy_slippery_standin_leaves_the_kinematic_features_unflagged(heavy_case):
+    # Physics (impulse = mass x velocity change): the trunk carries 68% of the body mass, so +15% trunk
+    # mass is about +10% total mass and about 10% less centre-of-mass velocity from the same push. The
+    # sweep randomises the push size by +-15% and the trunk mass by +-10%, so the kinematic features stay
+    # inside the simulated spread; friction 0.6 changes nothing while the feet do not slip (no fall at
+    # these safe parameter sets). None of them may be called "does not carry over".
+    scenario, store, _ = heavy_case
+    report = gapgauge.assess_shift(scenario, store, seed=0)
+    for name in ("peak_com_excursion", "margin_of_stability", "recovery_time"):
+        feature = report.feature(name)
+        assert feature.verdict != "does_not_carry_over", (name, feature.reason)
+
+
 def test_shift_command_prints_verdicts_and_writes_json_and_plots(tmp_path, close_case):
     from click.testing import CliRunner
 
