@@ -575,9 +575,9 @@ def _budget_section(data: ReportData) -> dict[str, Any] | None:
         rows.append(
             {
                 "name": label,
-                "p50": fmt(arm.get("p50")),
-                "p80": fmt(arm.get("p80")),
-                "p95": fmt(arm.get("p95")),
+                "p50": _trials(number(arm.get("p50")), budget),
+                "p80": _trials(number(arm.get("p80")), budget),
+                "p95": _trials(number(arm.get("p95")), budget),
                 "falls": fmt(arm.get("expected_falls")),
             }
         )
@@ -741,6 +741,14 @@ def _calibration_section(data: ReportData) -> dict[str, Any] | None:
     }
 
 
+def _trials(value: float | None, budget: dict[str, Any]) -> str:
+    """A budget quantile; one the draws never reach within the horizon reads "> T"."""
+    if value is not None:
+        return fmt(value)
+    horizon = number(budget.get("max_trials"))
+    return "–" if horizon is None else f"> {horizon:.0f}"
+
+
 def _cards(data: ReportData) -> list[dict[str, str]]:
     prior = data.results.get("prior") or {}
     budget = data.results.get("budget")
@@ -756,11 +764,13 @@ def _cards(data: ReportData) -> list[dict[str, str]]:
     return [
         {
             "label": "Trial budget (P80)",
-            "value": "–" if p80 is None else f"{fmt(p80)} trials",
+            "value": "–" if budget is None else f"{_trials(p80, budget)} trials",
             "sub": "run gapgauge budget"
             if budget is None
             else (
-                f"cold start {fmt(cold)}; saving {fmt(cold - p80)}" if cold is not None else "with the prior"
+                f"cold start {fmt(cold)}; saving {fmt(cold - p80)}"
+                if cold is not None and p80 is not None
+                else f"with the prior; cold start {_trials(cold, budget)}"
             ),
         },
         {
