@@ -34,6 +34,11 @@ json_option = click.option("--json", "json_path", default=None, type=click.Path(
                            help="Also write every number as JSON to this file.")
 
 
+def _print_notes(notes: list[str]) -> None:
+    for note in notes:
+        console.print(f"note: {escape(note)}")
+
+
 class _Group(click.Group):
     """Turns our own errors into one line on stderr and exit code 2."""
 
@@ -313,8 +318,7 @@ def shift_command(scenario: str, store_path: str, json_path: str | None, plots_d
         "no more often than in simulation; "
         f"order kept: Kendall tau >= {s['rank_threshold']:g} with p < level; seed {report.seed}"
     )
-    for note in report.notes:
-        console.print(f"note: {escape(note)}")
+    _print_notes(report.notes)
     if json_path:
         console.print(f"JSON: {escape(json_path)}")
     for path in report.plots:
@@ -366,8 +370,7 @@ def prior_command(scenario: str, store_path: str, json_path: str | None, seed: i
     console.print(table)
     console.print(f"fit time {fit.fit_seconds:.1f} s; simulation level "
                   f"{type(fit.objective_model.low_).__name__}; stored as model {fit.model_id}; seed {fit.seed}")
-    for note in fit.notes:
-        console.print(f"note: {escape(note)}")
+    _print_notes(fit.notes)
     if json_path:
         fit.write_json(json_path)
         console.print(f"JSON: {escape(json_path)}")
@@ -411,8 +414,7 @@ def propose_command(scenario: str, store_path: str, count: int, max_fall_risk: f
         console.print(f"#{i + 1}: {escape(p['reason'])}")
     console.print(f"batch: {escape(result.batch_method)}; incumbent {result.incumbent:.4g}; "
                   f"{result.n_hardware} hardware trial(s), {result.n_sim} simulated rollouts; seed {result.seed}")
-    for note in result.notes:
-        console.print(f"note: {escape(note)}")
+    _print_notes(result.notes)
     if out_path:
         result.write_json(out_path)
         console.print(f"JSON: {escape(out_path)}")
@@ -484,8 +486,7 @@ def budget_command(scenario: str, store_path: str, target_fraction: float, targe
     console.print(curve)
     console.print(f"target: {escape(plan.target['definition'])}; fall-risk limit {plan.max_fall_risk:g}; "
                   f"{plan.n_hardware} hardware trial(s) known; seed {plan.seed}; {plan.seconds:.1f} s")
-    for note in plan.notes:
-        console.print(f"note: {escape(note)}")
+    _print_notes(plan.notes)
     console.print(f"[bold]{escape(plan.sentence)}[/]")
     if json_path:
         plan.write_json(json_path)

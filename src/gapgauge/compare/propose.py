@@ -103,10 +103,11 @@ def propose(
         raise ModelError(f"--count must be at least 1, got {count}")
     if not 0.0 < max_fall_risk <= 1.0:
         raise ModelError(f"--max-fall-risk must be in (0, 1], got {max_fall_risk}")
+    store = None if store is None else _open_store(store)
     if prior is None:
         if store is None:
             raise ModelError("propose needs a fitted prior or a store; run `gapgauge prior` first")
-        prior = _current_prior(scenario, _open_store(store), seed)
+        prior = _current_prior(scenario, store, seed)
     model = prior.objective_model
     unit_bounds = _safe_unit_bounds(scenario)
     X_hw, y_hw = model.X_high_, model.y_high_
@@ -172,7 +173,7 @@ def propose(
         notes=notes,
     )
     if store is not None:  # the report reads the latest proposals back with load_model("proposals", hash)
-        _open_store(store).save_model("proposals", scenario.content_hash, params=proposals.to_dict())
+        store.save_model("proposals", scenario.content_hash, params=proposals.to_dict())
     return proposals
 
 
