@@ -1,0 +1,15 @@
+"""The caution every proposal carries: one text, read by the command line, the proposals and the report.
+
+gapgauge proposes parameters for a physical machine that can fall and hurt people or itself; the model's
+fall risk is an estimate, never a guarantee (DESIGN.md section 7).
+"""
+
+from __future__ import annotations
+
+CAUTION_BODY = (
+    "model predictions are not a safety guarantee. Run hardware trials with a harness or "
+    "spotter, torque and speed limits and an emergency stop; follow your lab's procedures, the "
+    "applicable robot-safety standards and local rules."
+)
+
+CAUTION = "CAUTION: " + CAUTION_BODY
