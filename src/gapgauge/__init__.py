@@ -8,7 +8,7 @@ from __future__ import annotations
 import importlib
 from typing import Any
 
-__version__ = "0.1.0"
+from .version import __version__
 
 from .errors import GapgaugeError, LogError, ModelError, ScenarioError, StoreError
 from .scenario import Scenario, load_scenario

@@ -12,7 +12,7 @@ import click
 from rich.console import Console
 from rich.markup import escape
 
-from . import __version__
+from .version import __version__
 from .errors import GapgaugeError
 
 console = Console(highlight=False)

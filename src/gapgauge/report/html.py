@@ -18,7 +18,7 @@ from typing import Any
 import jinja2
 import numpy as np
 
-from .. import __version__
+from ..version import __version__
 from ..errors import GapgaugeError, StoreError
 from ..scenario import Scenario
 from . import plots

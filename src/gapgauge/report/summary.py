@@ -20,7 +20,7 @@ from typing import Any
 
 import numpy as np
 
-from .. import __version__
+from ..version import __version__
 from ..errors import StoreError
 from ..records import RolloutBatch, TrialRecord
 from ..scenario import Scenario

@@ -22,7 +22,7 @@ from typing import TYPE_CHECKING, Any, TypeVar
 
 import numpy as np
 
-from .. import __version__
+from ..version import __version__
 from ..errors import StoreError
 from ..records import RolloutBatch, TrialRecord
 from . import codec, queries, schema
@@ -32,6 +32,7 @@ if TYPE_CHECKING:
     from ..trajectory import Trajectory
 
 T = TypeVar("T")
+R = TypeVar("R")
 
 SQLITE_HEADER = b"SQLite format 3\x00"
 BUSY_TIMEOUT_MS = 30_000
@@ -435,6 +436,23 @@ class Store:
             return None
         params, blob = rows[0]
         return codec.json.loads(params), ({} if blob is None else codec.npz_to_arrays(blob))
+
+    # ---- typed results -----------------------------------------------------------------------
+    def save_result(self, scenario_hash: str, result: Any) -> int:
+        """Store a typed result (a :class:`gapgauge.results.Result`) under its ``kind``. Returns its id."""
+        return self.save_model(result.kind, scenario_hash, result.to_dict())
+
+    def load_result(self, cls: type[R], scenario_hash: str) -> R | None:
+        """The newest stored result of ``cls.kind`` for the scenario, rebuilt as ``cls``; None if none."""
+        loaded = self.load_model(cls.kind, scenario_hash)
+        if loaded is None:
+            return None
+        try:
+            return cls.from_dict(loaded[0])
+        except (TypeError, ValueError, KeyError) as exc:
+            raise StoreError(
+                f"{self.path}: the stored {cls.kind} result cannot be read ({exc}); run the {cls.kind} step again"
+            ) from None
 
     # ---- overview and health ----------------------------------------------------------------
     def info(self, json_path: str | Path | None = None) -> dict:

@@ -145,7 +145,7 @@ def ingest(
     Returns:
         :class:`IngestSummary`. Bad files are in ``failed``; this function raises only for bad arguments.
     """
-    from .. import __version__
+    from ..version import __version__
 
     if (
         isinstance(matches, bool)
