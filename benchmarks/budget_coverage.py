@@ -38,9 +38,9 @@ from gapgauge.compare.budget import beliefs_from_prior, budget_from_prior, candi
 from gapgauge.compare.prior import fit_prior
 from gapgauge.sim.rollout import simulate
 from gapgauge.sim.standin import load_profile, run_standin
-from gapgauge.sim.sweep import sweep
+from gapgauge.app.sweep import sweep
 from gapgauge.store import Store
-from gapgauge.store.ingest import ingest
+from gapgauge.app.ingest import ingest
 
 ROOT = Path(__file__).resolve().parents[1]
 SCENARIO = ROOT / "scenarios" / "push_recovery.toml"
@@ -95,7 +95,7 @@ def one_run(scenario, sweep_path: Path, profile: str, seed: int, candidates: np.
     n_first = 3 + seed % 3
     logs = run_standin(scenario, ROOT / "scenarios" / "standin" / f"{profile}.toml", design=n_first,
                        out_dir=work / f"logs_{seed}", seed=seed)
-    ingest(scenario, logs, store=store, matches=4, seed=seed, progress=False)
+    ingest(scenario, store, logs, matches=4, seed=seed, progress=False)
     prior = fit_prior(scenario, store, seed=seed, progress=False)
     plan = budget_from_prior(prior, candidates, seed=seed, max_trials=MAX_TRIALS, draws=draws,
                              target_fraction=TARGET_FRACTION)

@@ -37,7 +37,7 @@ from gapgauge.compare.prior import fit_prior
 from gapgauge.compare.propose import propose
 from gapgauge.compare.sparse import SparseGP
 from gapgauge.scenario import load_scenario
-from gapgauge.sim.sweep import sweep
+from gapgauge.app.sweep import sweep
 from gapgauge.store import Store
 
 ROOT = Path(__file__).resolve().parents[1]

@@ -50,7 +50,7 @@ from gapgauge.sim.design import make_design
 from gapgauge.sim.model import _load, build_models
 from gapgauge.sim.physics import draw_physics
 from gapgauge.sim.rollout import SUB_BATCH
-from gapgauge.sim.sweep import sweep
+from gapgauge.app.sweep import sweep
 from gapgauge.store import Store
 
 ROOT = Path(__file__).resolve().parents[1]

@@ -53,7 +53,7 @@ from transfer_standin import CACHE, ROOT, StandinTruth, profiles  # noqa: E402
 from gapgauge import load_scenario  # noqa: E402
 from gapgauge.compare.prior import fit_prior, load_prior  # noqa: E402
 from gapgauge.errors import ModelError  # noqa: E402
-from gapgauge.sim.sweep import sweep  # noqa: E402
+from gapgauge.app.sweep import sweep  # noqa: E402
 from gapgauge.store import Store  # noqa: E402
 
 SCENARIO = ROOT / "scenarios" / "push_recovery.toml"

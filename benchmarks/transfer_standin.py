@@ -35,8 +35,8 @@ from gapgauge.features import success as success_rule
 from gapgauge.scenario import Scenario
 from gapgauge.sim.rollout import simulate
 from gapgauge.sim.standin import load_profile, run_standin
-from gapgauge.store.ingest import trial_record
-from gapgauge.store.logs import read_log
+from gapgauge.app.ingest import trial_record
+from gapgauge.logs import read_log
 
 ROOT = Path(__file__).resolve().parents[1]
 CACHE = ROOT / "benchmarks" / "cache" / "transfer"

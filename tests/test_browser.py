@@ -25,7 +25,7 @@ from typing import Any
 import pytest
 
 from gapgauge import load_scenario
-from gapgauge.cli import CAUTION
+from gapgauge.safety import CAUTION
 from gapgauge.report.html import write_report
 from test_report_support import REPO, build_store
 

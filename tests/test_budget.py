@@ -177,9 +177,9 @@ def test_budget_command_on_a_small_real_store_prints_the_booking_and_stores_the_
     from gapgauge import load_scenario
     from gapgauge.cli import main
     from gapgauge.sim.standin import run_standin
-    from gapgauge.sim.sweep import sweep
+    from gapgauge.app.sweep import sweep
     from gapgauge.store import Store
-    from gapgauge.store.ingest import ingest
+    from gapgauge.app.ingest import ingest
 
     root = Path(__file__).resolve().parents[1]
     path = root / "scenarios" / "push_recovery.toml"
@@ -187,7 +187,7 @@ def test_budget_command_on_a_small_real_store_prints_the_booking_and_stores_the_
     store = Store(tmp_path / "s.sqlite")
     sweep(scenario, 160, store=store, seed=0, workers=2, progress=False)
     logs = run_standin(scenario, root / "scenarios" / "standin" / "close.toml", design=3, out_dir=tmp_path, seed=0)
-    ingest(scenario, logs, store=store, matches=2, seed=0, progress=False)
+    ingest(scenario, store, logs, matches=2, seed=0, progress=False)
     store.close()
     out = tmp_path / "budget.json"
     run = CliRunner().invoke(main, ["budget", str(path), "--store", str(tmp_path / "s.sqlite"), "--draws", "16",

@@ -17,10 +17,14 @@ import numpy as np
 import pytest
 from scipy.stats import qmc
 
+import gapgauge
 from gapgauge import load_scenario
-from gapgauge.compare.calibration import calibrate
+from gapgauge.app.ingest import ingest
+from gapgauge.compare.calibration import CalibrationResult, calibrate
 from gapgauge.errors import GapgaugeError, ModelError, ScenarioError
 from gapgauge.records import RolloutBatch
+from gapgauge.sim.standin import run_standin
+from gapgauge.store import Store
 
 if sys.version_info >= (3, 11):
     import tomllib
@@ -85,7 +89,7 @@ def _hardware(scenario, simulator, params):
 def test_linear_simulator_recovers_truth_and_flags_friction(scenario):
     sim = _linear_simulator(scenario)
     params = _trials(scenario)
-    result = calibrate(scenario, params, _hardware(scenario, sim, params), MATCHED, sim, progress=False, seed=3)
+    result = calibrate(scenario, params, _hardware(scenario, sim, params), MATCHED, sim, seed=3)
     for p in result.parameters:
         if p.name == "friction":
             # No feature depends on friction: the discrepancy is flat along it, so its interval keeps
@@ -109,7 +113,7 @@ def test_calibration_is_reproducible_from_its_seed(scenario):
     sim = _linear_simulator(scenario)
     params = _trials(scenario)
     hw = _hardware(scenario, sim, params)
-    kwargs = dict(progress=False, seed=11, generations=3, polish=False, physics_names=["trunk_mass_scale"])
+    kwargs = dict(seed=11, generations=3, polish=False, physics_names=["trunk_mass_scale"])
     a = calibrate(scenario, params, hw, MATCHED, sim, **kwargs)
     b = calibrate(scenario, params, hw, MATCHED, sim, **kwargs)
     assert a.to_json() == b.to_json()
@@ -119,7 +123,7 @@ def test_calibration_is_reproducible_from_its_seed(scenario):
 def test_json_has_the_contracted_keys(scenario):
     sim = _linear_simulator(scenario)
     params = _trials(scenario)
-    result = calibrate(scenario, params, _hardware(scenario, sim, params), MATCHED, sim, progress=False,
+    result = calibrate(scenario, params, _hardware(scenario, sim, params), MATCHED, sim,
                        physics_names=["trunk_mass_scale", "friction"], generations=3)
     data = result.to_json()
     for key in ("parameters", "shift_before", "shift_after", "overlay", "seed", "evaluations"):
@@ -141,7 +145,7 @@ def test_features_with_no_simulated_spread_are_left_out(scenario):
 
     params = _trials(scenario)
     hw = np.column_stack([_hardware(scenario, base, params), np.full(5, 0.3)])
-    result = calibrate(scenario, params, hw, (*MATCHED, "sway_area"), sim, progress=False, generations=2,
+    result = calibrate(scenario, params, hw, (*MATCHED, "sway_area"), sim, generations=2,
                        physics_names=["trunk_mass_scale"])
     assert "sway_area" not in result.features
     assert "spread" in result.excluded_features["sway_area"]
@@ -152,14 +156,14 @@ def test_unknown_physics_name_is_a_user_error(scenario):
     params = _trials(scenario)
     with pytest.raises(ScenarioError, match="trunk_mass"):
         calibrate(scenario, params, _hardware(scenario, sim, params), MATCHED, sim,
-                  physics_names=["trunk_mass"], progress=False)
+                  physics_names=["trunk_mass"])
 
 
 def test_trials_without_features_are_a_user_error(scenario):
     sim = _linear_simulator(scenario)
     params = _trials(scenario)
     with pytest.raises(ModelError, match="no hardware feature"):
-        calibrate(scenario, params, np.full((5, 1), np.nan), ["recovery_time"], sim, progress=False)
+        calibrate(scenario, params, np.full((5, 1), np.nan), ["recovery_time"], sim)
     assert issubclass(ModelError, GapgaugeError)
 
 
@@ -176,7 +180,7 @@ def test_overlay_loads_and_carries_the_estimates(tmp_path):
     scenario = load_scenario(base_path)
     sim = _linear_simulator(scenario)
     params = _trials(scenario)
-    result = calibrate(scenario, params, _hardware(scenario, sim, params), MATCHED, sim, progress=False)
+    result = calibrate(scenario, params, _hardware(scenario, sim, params), MATCHED, sim)
     overlay_path = result.default_overlay_path()
     assert overlay_path.parent == base_path.parent
     overlay_path.write_text(result.overlay_text(overlay_path))
@@ -202,7 +206,7 @@ def test_overlay_in_a_sibling_folder_extends_by_relative_path(tmp_path):
     scenario = load_scenario(base_path)
     sim = _linear_simulator(scenario)
     params = _trials(scenario)
-    result = calibrate(scenario, params, _hardware(scenario, sim, params), MATCHED, sim, progress=False,
+    result = calibrate(scenario, params, _hardware(scenario, sim, params), MATCHED, sim,
                        physics_names=["trunk_mass_scale"], generations=3)
     (tmp_path / "calibrated").mkdir()
     target = tmp_path / "calibrated" / "robot7.toml"
@@ -233,7 +237,7 @@ KNOWN = {"trunk_mass_scale": 1.15, "friction": 0.6}
 def test_standin_calibration_recovers_known_physics_and_writes_a_loadable_overlay(tmp_path):
     from gapgauge.sim.standin import run_standin
     from gapgauge.store import Store
-    from gapgauge.store.ingest import ingest
+    from gapgauge.app.ingest import ingest
     from gapgauge.workflow import calibrate_from_store
 
     base_path = _project_copy(tmp_path)
@@ -244,12 +248,12 @@ def test_standin_calibration_recovers_known_physics_and_writes_a_loadable_overla
     logs = run_standin(scenario, profile, design=5, out_dir=tmp_path / "logs", seed=0)
     assert len(logs) == 5
     with Store(tmp_path / "store.sqlite") as store:
-        ingest(scenario, logs, store=store, matches=1, seed=0, progress=False)
+        ingest(scenario, store, logs, matches=1, seed=0)
         # The two quantities the profile changes are fitted; the others are held at the scenario's
         # nominal, which is their truth here (fitting all five from 5 trials is not reliable yet:
         # see the calibration report).
         result = calibrate_from_store(
-            scenario, store, physics_names=list(KNOWN), seed=0, progress=False, json_path=tmp_path / "cal.json",
+            scenario, store, physics_names=list(KNOWN), seed=0, json_path=tmp_path / "cal.json",
         )
         stored = store.load_model("calibration", scenario.content_hash)
     # Physics decides what is identifiable: friction is pinned only if something slips at 0.6. So a

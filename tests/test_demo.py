@@ -7,16 +7,16 @@ import json
 
 import pytest
 
-from gapgauge import demo, load_scenario
+from gapgauge import load_scenario
+from gapgauge.app import demo
 from gapgauge.errors import ScenarioError
+from gapgauge.sim.standin import load_profile
 
 
 def test_bundled_files_are_found_beside_the_package():
     files = demo.bundled_files()
     assert files["scenario"].name == "push_recovery.toml"
     assert files["model"].suffix == ".xml"
-    from gapgauge.sim.standin import load_profile
-
     scenario = load_scenario(files["scenario"])
     row = load_profile(files["profile"], scenario).physics_row(scenario)  # the profile that shows a gap
     nominal = [r.nominal for r in scenario.physics]
@@ -39,13 +39,10 @@ def test_missing_bundle_is_a_clear_error(tmp_path, monkeypatch):
 
 @pytest.mark.slow
 def test_quick_demo_runs_the_whole_path_and_writes_the_report(tmp_path):
-    import gapgauge.store
-
-    if not hasattr(gapgauge.store, "Store"):
-        pytest.skip("gapgauge.store.Store has not landed yet")
-    result = demo.run_demo(tmp_path / "demo", quick=True, seed=0, progress=False)
-    skipped = {s.name: s.skipped for s in result.steps if s.skipped}
-    assert skipped == {}, skipped
+    seen = []
+    result = demo.run_demo(tmp_path / "demo", quick=True, seed=0, on_step=lambda step: seen.append(step.done))
+    assert [step.done for step in result.steps] == [True] * 10
+    assert seen == [False, True] * 10  # every step announced, then reported with its figures
     assert result.report_path is not None and result.report_path.is_file()
     summary = json.loads(result.json_path.read_text(encoding="utf-8"))
     assert all(section["filled"] for section in summary["sections"].values()), summary["sections"]

@@ -69,7 +69,7 @@ def test_sparse_gp_learns_a_smooth_function_from_many_noisy_points() -> None:
     X_test = rng.uniform(size=(500, 4))
     rmse = np.sqrt(np.mean((sparse.predict(X_test) - f(X_test)) ** 2))
     assert rmse < 0.1
-    assert 0.25 < np.sqrt(sparse.noise_) * sparse._y_std < 0.35  # the generating noise sd is 0.3
+    assert 0.25 < np.sqrt(sparse.noise_) * sparse.y_std_ < 0.35  # the generating noise sd is 0.3
 
 
 def test_kmeans_plusplus_is_reproducible_and_picks_distinct_rows() -> None:

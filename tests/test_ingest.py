@@ -13,7 +13,7 @@ from gapgauge.cli import main
 from gapgauge.sim.physics import draw_physics
 from gapgauge.sim.standin import run_standin
 from gapgauge.store import Store
-from gapgauge.store.ingest import ingest
+from gapgauge.app.ingest import ingest
 from test_logs_support import ROOT, make_scenario
 
 ZERO_PROFILE = """
@@ -51,7 +51,7 @@ def test_zero_noise_standin_trial_has_the_features_of_its_matched_nominal_simula
     tmp_path, scenario, logs
 ):
     store = Store(tmp_path / "store.sqlite")
-    summary = ingest(scenario, logs, store=store, matches=2, seed=0, progress=False)
+    summary = ingest(scenario, store, logs, matches=2, seed=0, progress=False)
     assert not summary.failed and len(summary.stored) == 2
     for trial in store.trials(scenario.content_hash):
         nominal_match = store.matches(trial.id)  # row 0: the nominal physics, as the stand-in used
@@ -63,7 +63,7 @@ def test_zero_noise_standin_trial_has_the_features_of_its_matched_nominal_simula
 
 def test_each_trial_gets_k_matches_at_its_parameters_nominal_first(tmp_path, scenario, logs):
     store = Store(tmp_path / "store.sqlite")
-    summary = ingest(scenario, logs[:1], store=store, matches=4, seed=5, progress=False)
+    summary = ingest(scenario, store, logs[:1], matches=4, seed=5, progress=False)
     (trial,) = store.trials(scenario.content_hash)
     batch = store.matches(trial.id)
     assert summary.matched == {trial.id: 4} and len(batch) == 4
@@ -74,8 +74,8 @@ def test_each_trial_gets_k_matches_at_its_parameters_nominal_first(tmp_path, sce
 
 def test_ingesting_the_same_files_again_changes_nothing_and_says_so(tmp_path, scenario, logs):
     store = Store(tmp_path / "store.sqlite")
-    first = ingest(scenario, logs, store=store, matches=2, progress=False)
-    again = ingest(scenario, logs, store=store, matches=2, progress=False)
+    first = ingest(scenario, store, logs, matches=2, progress=False)
+    again = ingest(scenario, store, logs, matches=2, progress=False)
     assert (len(again.stored), len(again.skipped_duplicates), again.simulated) == (0, 2, 0)
     assert [i.trial_id for i in again.skipped_duplicates] == [i.trial_id for i in first.stored]
     assert len(store.trials(scenario.content_hash)) == 2
@@ -94,7 +94,7 @@ def test_a_batch_stores_the_good_files_and_lists_the_bad_with_nothing_stored_for
     side["params"]["ankle_kp"] = 1e6
     bad_params.with_suffix(".json").write_text(json.dumps(side))
     store = Store(tmp_path / "store.sqlite")
-    summary = ingest(scenario, [good, cut, lonely, bad_params], store=store, matches=1, progress=False)
+    summary = ingest(scenario, store, [good, cut, lonely, bad_params], matches=1, progress=False)
     assert [p for p, _ in summary.failed] == [str(cut), str(lonely), str(bad_params)]
     assert "truncated" in summary.failed[0][1] and "cut.csv:" in summary.failed[0][1]
     assert [t.source_path for t in store.trials(scenario.content_hash)] == [str(good.resolve())]
@@ -106,7 +106,7 @@ def test_a_ros2_bag_goes_in(tmp_path):
     scenario = make_scenario(tmp_path / "sc", append=BAG_TABLE)
     bag = write_bag(tmp_path / "trial_bag", scenario, n=500)
     store = Store(tmp_path / "store.sqlite")
-    summary = ingest(scenario, [bag], store=store, matches=1, progress=False)
+    summary = ingest(scenario, store, [bag], matches=1, progress=False)
     assert not summary.failed and len(summary.stored) == 1
     assert len(store.trials(scenario.content_hash)) == 1
 

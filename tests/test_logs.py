@@ -10,7 +10,7 @@ from scipy import signal
 from scipy.interpolate import interp1d
 
 from gapgauge.errors import LogError
-from gapgauge.store.logs import read_log
+from gapgauge.logs import read_log
 from test_logs_support import DEG, make_scenario, sidecar, table, write_log
 
 

@@ -10,7 +10,7 @@ import numpy as np
 import pytest
 
 from gapgauge.errors import LogError
-from gapgauge.store.logs import read_log
+from gapgauge.logs import read_log
 from test_logs_support import make_scenario, sidecar
 
 rosbags = pytest.importorskip("rosbags")

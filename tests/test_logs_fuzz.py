@@ -15,7 +15,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from gapgauge.errors import GapgaugeError
-from gapgauge.store.logs import LogTrial, read_log
+from gapgauge.logs import LogTrial, read_log
 from test_logs_support import make_scenario, sidecar, table
 
 EXAMPLES = 200

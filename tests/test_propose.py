@@ -9,7 +9,8 @@ import numpy as np
 import pytest
 from click.testing import CliRunner
 
-from gapgauge.cli import CAUTION, main
+from gapgauge.cli import main
+from gapgauge.safety import CAUTION
 from gapgauge.compare.prior import fit_prior
 from gapgauge.compare.propose import propose
 from gapgauge.sim.standin import load_params_file

@@ -18,7 +18,7 @@ import pytest
 from matplotlib.image import imread
 
 from gapgauge import load_scenario
-from gapgauge.cli import CAUTION
+from gapgauge.safety import CAUTION
 from gapgauge.errors import StoreError
 from gapgauge.report.html import write_report
 from gapgauge.report.summary import collect, decide

@@ -20,7 +20,7 @@ from gapgauge import load_scenario
 from gapgauge.cli import main
 from gapgauge.records import TrialRecord
 from gapgauge.store import Store
-from gapgauge.store.db import check_store
+from gapgauge.store import check_store
 from test_robust_support import ROOT, fake_batch
 
 PLANNED = 24

@@ -25,8 +25,8 @@ from gapgauge.errors import LogError
 from gapgauge.records import TrialRecord
 from gapgauge.report.html import write_report
 from gapgauge.store import Store
-from gapgauge.store.ingest import ingest
-from gapgauge.store.logs import read_log
+from gapgauge.app.ingest import ingest
+from gapgauge.logs import read_log
 from test_logs_support import make_scenario, sidecar, table, write_log
 from test_report_support import build_store
 from test_robust_support import make_project, run
@@ -127,7 +127,7 @@ def test_a_model_mujoco_cannot_use_is_one_line_before_anything_is_stored(tmp_pat
     scenario = load_scenario(make_scenario(tmp_path / "good").path)  # a log that is fine
     log = write_log(tmp_path / "logs", *table(rate_hz=150.0, duration=1.0), sidecar(scenario))
     with Store(store) as db, pytest.raises(ScenarioError, match="key 'model'"):
-        ingest(load_scenario(project), [log], store=db, matches=2, progress=False)
+        ingest(load_scenario(project), db, [log], matches=2, progress=False)
     with sqlite3.connect(store) as conn:
         assert conn.execute("SELECT COUNT(*) FROM trials").fetchone()[0] == 0
 
@@ -189,7 +189,7 @@ def test_formula_like_notes_and_robot_ids_are_stored_verbatim(tmp_path):
     logs = [write_log(tmp_path / "logs", header, rows, sidecar(scenario, notes=text, robot_id=text[::-1]),
                       name=f"trial_{i:03d}") for i, text in enumerate(FORMULAS)]
     with Store(tmp_path / "s.sqlite") as store:
-        summary = ingest(scenario, logs, store=store, matches=1, progress=False)
+        summary = ingest(scenario, store, logs, matches=1, progress=False)
     assert not summary.failed
     with sqlite3.connect(tmp_path / "s.sqlite") as conn:
         stored = conn.execute("SELECT notes, robot_id FROM trials ORDER BY id").fetchall()

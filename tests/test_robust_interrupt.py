@@ -19,10 +19,10 @@ import pytest
 
 from gapgauge import load_scenario
 from gapgauge.sim.standin import run_standin
-from gapgauge.sim.sweep import sweep
+from gapgauge.app.sweep import sweep
 from gapgauge.store import Store
-from gapgauge.store.db import check_store
-from gapgauge.store.ingest import ingest
+from gapgauge.store import check_store
+from gapgauge.app.ingest import ingest
 from test_robust_support import assert_same_rows, gapgauge, integrity, make_project, run, scalar, sweep_rows, wait_until
 
 PLANNED = 480
@@ -110,7 +110,7 @@ def test_a_sweep_killed_four_times_at_random_moments_ends_with_the_reference_row
 def reference_ingest(project, logs, tmp_path_factory):
     path = tmp_path_factory.mktemp("ref-ingest") / "ref.sqlite"
     with Store(path) as store:
-        summary = ingest(load_scenario(project), logs, store=store, matches=MATCHES, seed=0, progress=False)
+        summary = ingest(load_scenario(project), store, logs, matches=MATCHES, seed=0, progress=False)
     assert len(summary.stored) == 2 and not summary.failed
     return path
 
@@ -178,7 +178,7 @@ def test_an_ingest_that_dies_between_its_steps_leaves_whole_trials_and_resumes(p
     store = Store(path)
     store._conn = CrashAtCommit(store._conn, marker)
     with pytest.raises(Crash):
-        ingest(scenario, logs[:1], store=store, matches=8, seed=0, progress=False)
+        ingest(scenario, store, logs[:1], matches=8, seed=0, progress=False)
     assert store._conn.crashed
     store.close()
     assert integrity(path) == "ok"
@@ -186,7 +186,7 @@ def test_an_ingest_that_dies_between_its_steps_leaves_whole_trials_and_resumes(p
     assert trials == (0 if marker == "INTO trials" else 1)  # nothing, or the whole trial
     assert scalar(path, "SELECT COUNT(*) FROM matches") == 0
     with Store(path) as store:
-        summary = ingest(scenario, logs[:1], store=store, matches=8, seed=0, progress=False)
+        summary = ingest(scenario, store, logs[:1], matches=8, seed=0, progress=False)
         problems, unfinished = check_store(path)
     assert summary.matched == {summary.trials[0].id: 8}
     assert summary.simulated == (8 if marker == "INTO trials" else 0)  # stored simulations are not redone

@@ -11,6 +11,7 @@ import numpy as np
 import pytest
 
 from gapgauge import ScenarioError, load_scenario
+from gapgauge.scenario.model_info import joint_ranges
 
 ROOT = Path(__file__).resolve().parents[1]
 PUSH = ROOT / "scenarios" / "push_recovery.toml"
@@ -185,3 +186,38 @@ def test_model_that_is_not_well_formed_xml_is_refused(project: Path) -> None:
     path = _variant(project, "../models/planar_body.xml", "../models/cut.xml")
     with pytest.raises(ScenarioError, match=r"not well-formed XML"):
         load_scenario(path)
+
+
+def _model_variant(project: Path, edits: dict[str, str]) -> Path:
+    """A copy of the bundled model with text ``edits`` (old -> new), and a scenario naming it."""
+    text = (project / "models" / "planar_body.xml").read_text()
+    for old, new in edits.items():
+        assert old in text, f"test set-up: {old!r} not in the model"
+        text = text.replace(old, new, 1)
+    (project / "models" / "variant.xml").write_text(text)
+    return _variant(project, "../models/planar_body.xml", "../models/variant.xml")
+
+
+def test_joint_ranges_in_degrees_compile_to_radians(project: Path) -> None:
+    # MJCF convention (MuJoCo docs, XML reference, compiler/angle): with angle="degree" a hinge's range
+    # is read in degrees and the compiled model holds radians, range * pi / 180.
+    degrees = {"ankle": (-40.0, 40.0), "knee": (-115.0, 3.0), "hip": (-35.0, 115.0)}
+    path = _model_variant(project, {
+        '<compiler angle="radian"': '<compiler angle="degree"',
+        'range="-0.7 0.7"': 'range="-40 40"',
+        'range="-2.0 0.05"': 'range="-115 3"',
+        'range="-0.6 2.0"': 'range="-35 115"',
+    })
+    ranges = joint_ranges(load_scenario(path))
+    for name, (low, high) in degrees.items():
+        assert ranges[name] == pytest.approx((low * math.pi / 180.0, high * math.pi / 180.0), rel=1e-12)
+
+
+def test_joint_declared_unlimited_has_no_range(project: Path) -> None:
+    # MJCF: limited="false" switches a joint's range off even when the range attribute is given
+    # (MuJoCo docs, XML reference, joint/limited); root_pitch has no range at all under autolimits.
+    path = _model_variant(project, {'range="-0.6 2.0"': 'range="-0.6 2.0" limited="false"'})
+    ranges = joint_ranges(load_scenario(path))
+    assert "hip" not in ranges
+    assert "root_pitch" not in ranges
+    assert ranges["ankle"] == pytest.approx((-0.7, 0.7))  # the range written in the bundled model, in rad

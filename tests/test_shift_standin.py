@@ -23,13 +23,13 @@ PROFILES = ROOT / "scenarios" / "standin"
 def _store_with_trials(tmp_path: Path, profile: str):
     store_module = pytest.importorskip("gapgauge.store.db", reason="the store (store/db.py) has not landed")
     from gapgauge.sim.standin import run_standin
-    from gapgauge.store.ingest import ingest
+    from gapgauge.app.ingest import ingest
 
     scenario = gapgauge.load_scenario(SCENARIO)
     logs = run_standin(scenario, PROFILES / f"{profile}.toml", design=5, out_dir=tmp_path / "logs", seed=1)
     store_path = tmp_path / "store.sqlite"
     store = store_module.Store(store_path)
-    ingest(scenario, logs, store=store, matches=16, seed=0, progress=False)
+    ingest(scenario, store, logs, matches=16, seed=0, progress=False)
     return scenario, store, store_path
 
 

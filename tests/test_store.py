@@ -253,7 +253,7 @@ def test_two_writers_at_once_both_keep_every_row(tmp_path, scenario):
 
 
 def test_rollouts_of_an_unknown_scenario_say_what_to_do(tmp_path):
-    with Store(tmp_path / "s.sqlite") as store, pytest.raises(StoreError, match="gapgauge sweep"):
+    with Store(tmp_path / "s.sqlite") as store, pytest.raises(StoreError, match="sweep it first"):
         store.rollouts("0123456789abcdef")
 
 

@@ -23,7 +23,7 @@ from click.testing import CliRunner
 
 from gapgauge import load_scenario
 from gapgauge.cli import main
-from gapgauge.sim.sweep import sweep
+from gapgauge.app.sweep import sweep
 from gapgauge.store import Store
 
 ROOT = Path(__file__).resolve().parents[1]

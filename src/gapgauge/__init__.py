@@ -17,19 +17,19 @@ from .trajectory import Trajectory
 # public name -> "module:attribute", imported on first access
 _LAZY = {
     "Store": "gapgauge.store:Store",
-    "sweep": "gapgauge.sim.sweep:sweep",
+    "sweep": "gapgauge.app.sweep:sweep",
     "simulate": "gapgauge.sim.rollout:simulate",
     "compute_features": "gapgauge.features:compute_features",
-    "read_log": "gapgauge.store.logs:read_log",
-    "ingest": "gapgauge.store.ingest:ingest",
+    "read_log": "gapgauge.logs:read_log",
+    "ingest": "gapgauge.app.ingest:ingest",
     "run_standin": "gapgauge.sim.standin:run_standin",
     "assess_shift": "gapgauge.compare.shift:assess_shift",
     "fit_prior": "gapgauge.compare.prior:fit_prior",
     "propose": "gapgauge.compare.propose:propose",
     "plan_budget": "gapgauge.compare.budget:plan_budget",
-    "calibrate": "gapgauge.compare.calibration:calibrate",
+    "calibrate": "gapgauge.app.calibrate:calibrate",
     "write_report": "gapgauge.report.html:write_report",
-    "run_demo": "gapgauge.demo:run_demo",
+    "run_demo": "gapgauge.app.demo:run_demo",
 }
 
 __all__ = [

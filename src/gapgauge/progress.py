@@ -17,6 +17,6 @@ def silent(stage: str, done: int, total: int) -> None:
     """The default callback: report nothing."""
 
 
-def or_silent(progress: Progress | None) -> Progress:
-    """``progress`` itself, or :func:`silent` when None."""
-    return silent if progress is None else progress
+def or_silent(progress: Progress | None | bool) -> Progress:
+    """``progress`` itself, or :func:`silent` when it is None or not callable (``False``)."""
+    return progress if callable(progress) else silent

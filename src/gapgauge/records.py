@@ -6,6 +6,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from .results import Result
+
 STATUSES = ("ok", "fell", "diverged")
 
 
@@ -93,3 +95,57 @@ class TrialRecord:
     series: object | None = None  # gapgauge.trajectory.Trajectory or None
     extra: dict = field(default_factory=dict)
     id: int | None = None
+
+
+DEFAULT_MATCHES = 32  # matched simulations per hardware trial (nominal physics plus 31 draws)
+
+
+@dataclass
+class IngestedFile:
+    """One log that went in (or was already in)."""
+
+    path: str
+    trial_id: int
+    sha256: str
+    created: bool
+    synthetic: bool
+    outcome: str | None
+    fell: bool
+    objective: float
+    ignored_columns: list[str] = field(default_factory=list)
+    warnings: list[str] = field(default_factory=list)
+
+
+@dataclass
+class IngestSummary(Result):
+    """What :func:`gapgauge.app.ingest.ingest` did.
+
+    Attributes:
+        scenario_hash: the scenario version the trials belong to.
+        stored: files stored now.
+        skipped_duplicates: files whose trial was already stored (nothing changed for them).
+        failed: ``(path, one-line reason)`` of every refused file; nothing of them was stored.
+        trials: the :class:`TrialRecord` of every stored or already-stored file of this batch (with ``id``;
+            not part of the stored summary: the trials themselves are in the store).
+        matched: trial id -> number of matched simulations linked to it (``matches`` when complete).
+        simulated: rollouts simulated by this call (0 when every match was already there).
+        matches: K asked for. seed: seed of the match runs.
+    """
+
+    scenario_hash: str
+    stored: list[IngestedFile] = field(default_factory=list)
+    skipped_duplicates: list[IngestedFile] = field(default_factory=list)
+    failed: list[tuple[str, str]] = field(default_factory=list)
+    trials: list[TrialRecord] = field(default_factory=list, metadata={"stored": False})
+    matched: dict[int, int] = field(default_factory=dict)
+    simulated: int = 0
+    matches: int = DEFAULT_MATCHES
+    seed: int = 0
+
+    kind = "ingest"
+    schema_version = 1
+
+    @property
+    def ok(self) -> bool:
+        """True when no file failed."""
+        return not self.failed

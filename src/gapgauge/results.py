@@ -170,5 +170,7 @@ class Result:
             scratch.write_text(self.to_json() + "\n", encoding="utf-8")
             scratch.replace(target)
         except OSError as exc:
-            raise GapgaugeError(f"{target}: cannot write the {self.kind} JSON ({exc.strerror}); check the folder") from None
+            raise GapgaugeError(
+                f"{target}: cannot write the {self.kind} JSON ({exc.strerror}); check the folder"
+            ) from None
         return target

@@ -12,8 +12,11 @@ hardware level takes the trials' margins.
 with ``f(x) ~ N(mu, sd^2)`` the latent hardware margin and ``Phi(a + b (threshold - f))`` a probit link
 from the latent margin to the chance of a fall, fitted to the simulated outcomes (see
 :meth:`FallModel._calibrate`): the link carries the trial-to-trial scatter that physics brings, the
-predictive sd carries what the model does not know. The surface is the same as the other models': ``fit``, ``predict``,
-``log_marginal_likelihood``, plus :meth:`fall_probability`.
+predictive sd carries what the model does not know. The surface is the same as the other models':
+``fit`` returns self, ``predict(X, return_std=False, return_cov=False)`` (the margin), ``sample_y``,
+``log_marginal_likelihood``, ``to_state`` / ``from_state``, plus :meth:`FallModel.predict_proba`
+(scikit-learn's classifier verb: columns stand, fall) and :meth:`FallModel.fall_probability` (its fall
+column).
 
 The threshold. The margin is the minimum over the trial, and a body can dip below 0 and still recover
 with its ankles and hips (14% of the standing rollouts of a 2,000-rollout push_recovery sweep did), so
@@ -39,11 +42,17 @@ from scipy.special import log_ndtr, ndtr
 
 from .multifidelity import DISCREPANCY_SD_PRIOR, MultiFidelityGP
 
+# predict_proba's columns, in scikit-learn's order of classes_: stood (False), fell (True)
+CLASSES = np.array([False, True])
+
 
 class FallModel:
     """Probability of a fall from the modelled margin of stability (m).
 
     Parameters are passed to :class:`MultiFidelityGP` (priors, inducing points, seed).
+
+    Fitted attributes: ``model_`` (the multi-fidelity GP of the winsorised margin, m), ``threshold_``
+    (m), ``floor_`` (m), ``calibration_`` (``(a, b)`` of the probit link), ``classes_`` (stood, fell).
     """
 
     def __init__(
@@ -93,7 +102,20 @@ class FallModel:
             X_low, target, X_high,
             np.maximum(np.asarray(margin_high, dtype=float), self.floor_))
         self.calibration_ = self._calibrate(X_low, fell)
+        self.classes_ = CLASSES
         return self
+
+    def copy_with_high(self, X_high: np.ndarray, margin_high: np.ndarray, optimize: bool = True) -> FallModel:
+        """A new fall model sharing this one's simulation level, threshold, floor and link (all fitted
+        on the simulations only), with the hardware level refitted to ``X_high (k x dim)`` (unit cube),
+        ``margin_high (k,)`` m."""
+        other = FallModel(rho_sd=self.rho_sd, offset_sd=self.offset_sd, discrepancy_sd=self.discrepancy_sd,
+                          **self.mf_options)
+        other.threshold_, other.floor_, other.calibration_ = self.threshold_, self.floor_, self.calibration_
+        other.classes_ = CLASSES
+        floored = np.maximum(np.asarray(margin_high, dtype=float), self.floor_)
+        other.model_ = self.model_.copy_with_high(X_high, floored, optimize=optimize)
+        return other
 
     def _calibrate(self, X_low: np.ndarray, fell: np.ndarray, max_points: int = 20000) -> tuple[float, float]:
         """Probit link ``P(fall | latent margin f) = Phi(a + b (threshold - f))`` fitted to simulated outcomes.
@@ -124,18 +146,34 @@ class FallModel:
         return float(fit.x[0]), float(fit.x[1])
 
     def predict(
-        self, X: np.ndarray, return_std: bool = False, observation: bool = False
+        self, X: np.ndarray, return_std: bool = False, return_cov: bool = False, *, observation: bool = False
     ) -> np.ndarray | tuple[np.ndarray, np.ndarray]:
-        """Margin of stability on hardware at ``X (n x dim)`` (unit cube): mean (and sd), m."""
-        return self.model_.predict(X, return_std=return_std, observation=observation)
+        """Latent (winsorised) margin of stability on hardware at ``X (n x dim)`` (unit cube): mean
+        ``(n,)`` m, with ``return_std`` its sd ``(n,)`` m, with ``return_cov`` its covariance ``(n x n)`` m^2
+        (:meth:`MultiFidelityGP.predict`)."""
+        return self.model_.predict(X, return_std, return_cov, observation=observation)
+
+    def sample_y(
+        self, X: np.ndarray, n_samples: int = 1, random_state: int | np.random.Generator | None = None
+    ) -> np.ndarray:
+        """``(n x n_samples)`` joint draws of the latent hardware margin at ``X (n x dim)``, m."""
+        return self.model_.sample_y(X, n_samples, random_state)
 
     def log_marginal_likelihood(
         self, theta: np.ndarray | None = None, eval_gradient: bool = False
     ) -> float | tuple[float, np.ndarray]:
+        """The margin model's hardware-level log marginal likelihood (:meth:`MultiFidelityGP.log_marginal_likelihood`)."""
         return self.model_.log_marginal_likelihood(theta, eval_gradient)
 
+    def predict_proba(self, X: np.ndarray) -> np.ndarray:
+        """``(n x 2)`` probabilities of a new hardware trial at ``X (n x dim)`` (unit cube): columns
+        ``classes_`` = (stood, fell), as scikit-learn's classifiers order them."""
+        fall = self.fall_probability(X)
+        return np.column_stack([1.0 - fall, fall])
+
     def fall_probability(self, X: np.ndarray) -> np.ndarray:
-        """``P(margin < threshold)`` of a new hardware trial at ``X (n x dim)`` (unit cube): ``(n,)``."""
+        """``P(fall)`` of a new hardware trial at ``X (n x dim)`` (unit cube): ``(n,)``, the fall column of
+        :meth:`predict_proba`."""
         # E_f[Phi(a + b (threshold - f))] for f ~ N(mean, sd^2) = Phi((a + b (threshold - mean)) / sqrt(1 + b^2 sd^2))
         # (the probit-Gaussian integral; Rasmussen and Williams 2006, eq. 3.80)
         mean, sd = self.model_.predict(X, return_std=True)
@@ -143,18 +181,24 @@ class FallModel:
         return ndtr((a + b * (self.threshold_ - mean)) / np.sqrt(1.0 + (b * sd) ** 2))
 
     def to_state(self) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
+        """JSON-able parameters and arrays that restore every later call (no pickle)."""
         params, arrays = self.model_.to_state()
         return {**params, "floor": self.floor_, "threshold": self.threshold_,
-                "calibration": list(self.calibration_)}, arrays
+                "calibration": list(self.calibration_),
+                "fall_priors": {"rho_sd": self.rho_sd, "offset_sd": self.offset_sd,
+                                "discrepancy_sd": self.discrepancy_sd}}, arrays
 
     @classmethod
     def from_state(cls, params: dict[str, Any], arrays: dict[str, np.ndarray]) -> FallModel:
-        out = cls()
+        """The model of :meth:`to_state`."""
+        out = cls(**params.get("fall_priors", {}))
         out.model_ = MultiFidelityGP.from_state(params, arrays)
+        out.mf_options = {"max_inducing": out.model_.max_inducing, "n_restarts": out.model_.n_restarts}
         out.floor_ = float(params["floor"])
         out.threshold_ = float(params.get("threshold", 0.0))
         a, b = params.get("calibration", (0.0, 1.0))
         out.calibration_ = (float(a), float(b))
+        out.classes_ = CLASSES
         return out
 
 

@@ -13,11 +13,14 @@ Learning* (2006): Cholesky factor of ``K + noise I``, ``alpha = L^T \\ (L \\ y)`
   (the maximum a posteriori replaces the maximum of the marginal likelihood);
 - hyperparameters by L-BFGS-B from the initial values plus a few seeded restarts.
 
-The surface is scikit-learn's ``GaussianProcessRegressor``: ``fit(X, y)`` returns self,
-``predict(X, return_std=False)``, ``log_marginal_likelihood(theta=None, eval_gradient=False)``;
-hyperparameters are plain attributes and fitted state ends in ``_``. Inputs are expected in the
-unit cube (the callers scale them with ``scenario.to_unit``); outputs are standardised when
-``normalize_y`` is true.
+The surface is scikit-learn's ``GaussianProcessRegressor``, shared by every model of
+:mod:`gapgauge.compare`: ``fit(X, y)`` returns self, ``predict(X, return_std=False, return_cov=False)``,
+``sample_y(X, n_samples=1, random_state=None)``, ``log_marginal_likelihood(theta=None,
+eval_gradient=False)``, ``to_state()`` / ``from_state()``; hyperparameters are plain attributes and
+fitted state ends in ``_`` (``y_mean_``, ``y_std_``, ``kernel_``, ``noise_``, ``L_``, ``alpha_``).
+Factors go through the package's one jitter policy (:func:`gapgauge.compare.linalg.cholesky_jittered`).
+Inputs are expected in the unit cube (the callers scale them with ``scenario.to_unit``); outputs are
+standardised when ``normalize_y`` is true.
 """
 
 from __future__ import annotations
@@ -25,14 +28,14 @@ from __future__ import annotations
 from typing import Any
 
 import numpy as np
-from scipy.linalg import cho_solve, cholesky, solve_triangular
+from scipy.linalg import cho_solve
 from scipy.optimize import minimize
 from threadpoolctl import threadpool_limits
 
 from ..errors import ModelError
 from .kernels import Matern52, WithFixedCovariance, default_length_scale
+from .linalg import CHOLESKY_LOWER, FIT_BLAS_THREADS, cholesky_jittered, posterior_covariance, solve_lower
 
-CHOLESKY_LOWER = True
 LOG2PI = np.log(2.0 * np.pi)
 # bounds of the log hyperparameters searched by the optimiser: inputs are in the unit cube and
 # outputs standardised, so length-scales far outside [0.01, 100] and variances outside
@@ -40,10 +43,6 @@ LOG2PI = np.log(2.0 * np.pi)
 LOG_VARIANCE_BOUNDS = (np.log(1e-4), np.log(1e4))
 LOG_LENGTH_SCALE_BOUNDS = (np.log(1e-2), np.log(1e2))
 LOG_NOISE_BOUNDS = (np.log(1e-8), np.log(10.0))
-# BLAS threads while fitting: the products here are small and many, and on shared cores OpenBLAS's
-# spinning threads made one n = 2000 sparse-bound evaluation 1.5 s instead of 0.04 s (measured on
-# the 2-core development machine under load); one thread is never much slower for these sizes
-FIT_BLAS_THREADS = 1
 
 
 def log_normal_prior(theta: np.ndarray, prior: np.ndarray | None) -> tuple[float, np.ndarray]:
@@ -77,6 +76,11 @@ class ExactGP:
         hyperprior: ``(1 + dim + 1) x 2`` normal priors (mean, sd) on ``theta``, or None.
         basis_prior: ``(b0 (p,), B (p x p))`` prior of the basis coefficients, or None for no basis.
         random_state: seed or ``numpy.random.Generator`` for the restarts.
+
+    Fitted attributes: ``kernel_``, ``noise_`` (the hyperparameters used), ``y_mean_``, ``y_std_``
+    (the standardisation), ``X_train_ (n x dim)``, ``y_train_ (n,)`` standardised, ``basis_train_
+    (n x p)`` or None, ``L_ (n x n)`` and ``alpha_ (n,)`` of Algorithm 2.1, ``coef_ (p,)`` and
+    ``coef_cov_ (p x p)`` the basis coefficients' posterior (standardised units) or None.
     """
 
     def __init__(
@@ -133,13 +137,14 @@ class ExactGP:
                                                                         np.log(length_scale)]))
         self.noise_ = float(self.noise)
         if self.normalize_y and y.size > 0:
-            self._y_mean = float(np.mean(y))
+            self.y_mean_ = float(np.mean(y))
             sd = float(np.std(y))
-            self._y_std = sd if sd > 0 else 1.0
+            self.y_std_ = sd if sd > 0 else 1.0
         else:
-            self._y_mean, self._y_std = 0.0, 1.0
+            self.y_mean_, self.y_std_ = 0.0, 1.0
         self.X_train_ = X
-        self.y_train_ = (y - self._y_mean) / self._y_std
+        # standardised targets (what the likelihood sees)
+        self.y_train_ = (y - self.y_mean_) / self.y_std_
         self.basis_train_ = None if basis is None else np.atleast_2d(np.asarray(basis, dtype=float))
         with threadpool_limits(limits=FIT_BLAS_THREADS, user_api="blas"):
             if self.optimize and y.size > 0:
@@ -193,7 +198,7 @@ class ExactGP:
             b0, B = self.basis_prior
             H = self.basis_train_
             # Alg 2.1 line 2 on K alone, for the coefficients' posterior (R&W eq. 2.42)
-            L0 = _cholesky(K)
+            L0 = cholesky_jittered(K)
             KiH = cho_solve((L0, CHOLESKY_LOWER), H, check_finite=False)
             Kiy = cho_solve((L0, CHOLESKY_LOWER), self.y_train_, check_finite=False)
             Binv = np.linalg.inv(B)
@@ -206,7 +211,7 @@ class ExactGP:
             self.coef_ = self.coef_cov_ = None
             residual = self.y_train_
         # Alg 2.1 line 2: L = cholesky(K + noise I)
-        self.L_ = _cholesky(K) if n else np.zeros((0, 0))
+        self.L_ = cholesky_jittered(K)
         # Alg 2.1 line 3: alpha = L^T \ (L \ y)
         self.alpha_ = cho_solve((self.L_, CHOLESKY_LOWER), residual, check_finite=False) if n else np.zeros(0)
 
@@ -220,6 +225,8 @@ class ExactGP:
         With ``eval_gradient`` also returns its gradient with respect to ``theta``.
         """
         theta = self.theta if theta is None else np.asarray(theta, dtype=float)
+        if self.y_train_.size == 0:  # no data: the empty product of densities
+            return (0.0, np.zeros_like(theta)) if eval_gradient else 0.0
         K, kernel, noise = self._covariance(theta)
         y = self.y_train_
         if self.basis_train_ is not None:
@@ -227,8 +234,8 @@ class ExactGP:
             K = K + self.basis_train_ @ B @ self.basis_train_.T
             y = y - self.basis_train_ @ b0
         try:
-            L = cholesky(K, lower=CHOLESKY_LOWER, check_finite=False)
-        except np.linalg.LinAlgError:
+            L = cholesky_jittered(K)
+        except ModelError:  # not positive definite at this theta: the optimiser backs off
             return (-np.inf, np.zeros_like(theta)) if eval_gradient else -np.inf
         alpha = cho_solve((L, CHOLESKY_LOWER), y, check_finite=False)
         value = -0.5 * y @ alpha - np.log(np.diag(L)).sum() - 0.5 * y.size * LOG2PI
@@ -252,78 +259,118 @@ class ExactGP:
         return value + lp, grad + lp_grad
 
     # ---- prediction -----------------------------------------------------------------------
+    def _prior_cross(self, X: np.ndarray, basis: np.ndarray | None) -> np.ndarray:
+        """Prior covariance ``(n_train x n)`` between the training inputs and ``X``, basis term included."""
+        cross = self.kernel_(self.X_train_, X)
+        if self.basis_train_ is not None:
+            cross = cross + self.basis_train_ @ self.basis_prior[1] @ self._check_basis(basis, X).T
+        return cross
+
+    def _check_basis(self, basis: np.ndarray | None, X: np.ndarray) -> np.ndarray:
+        if basis is None:
+            raise ValueError("this model has basis functions: give their values at X as basis (n x p)")
+        basis = np.atleast_2d(np.asarray(basis, dtype=float))
+        if basis.shape[0] != X.shape[0]:
+            raise ValueError(f"basis has {basis.shape[0]} rows but X has {X.shape[0]}")
+        return basis
+
     def predict(
         self,
         X: np.ndarray,
         return_std: bool = False,
+        return_cov: bool = False,
+        *,
         basis: np.ndarray | None = None,
         observation: bool = False,
     ) -> np.ndarray | tuple[np.ndarray, np.ndarray]:
-        """Predictive mean (and sd) at ``X (n x dim)``, in the units of ``y`` given to :meth:`fit`.
+        """Predictive mean ``(n,)`` at ``X (n x dim)``, in the units of ``y`` given to :meth:`fit`; with
+        ``return_std`` also its sd ``(n,)``, with ``return_cov`` its covariance ``(n x n)`` (units squared).
 
-        The sd is that of the latent function; with ``observation`` it is that of a new
-        observation (the noise variance added, as scikit-learn does with a ``WhiteKernel``).
-        ``basis`` is ``(n x p)``, the basis functions at ``X`` when the model has a basis.
+        The sd and covariance are those of the latent function; with ``observation`` those of new
+        observations (the noise variance added on the diagonal, as scikit-learn does with a
+        ``WhiteKernel``). ``basis`` is ``(n x p)``, the basis functions at ``X`` when the model has a
+        basis (R&W section 2.7: their prior ``H^T B H`` is part of every covariance).
         """
+        if return_std and return_cov:
+            raise ValueError("give return_std or return_cov, not both")
         X = np.atleast_2d(np.asarray(X, dtype=float))
-        Ks = self.kernel_(X, self.X_train_)
+        cross = self._prior_cross(X, basis)
         mean = np.zeros(X.shape[0])
-        prior_var = self.kernel_.diag(X).copy()
         if self.basis_train_ is not None:
-            if basis is None:
-                raise ValueError("this model has basis functions: give their values at X")
-            b0, B = self.basis_prior
-            basis = np.atleast_2d(basis)
-            Ks = Ks + basis @ B @ self.basis_train_.T
-            mean += basis @ b0
-            prior_var += np.einsum("ij,jk,ik->i", basis, B, basis)
+            mean += self._check_basis(basis, X) @ self.basis_prior[0]
         # Alg 2.1 line 4: mean = k*^T alpha
-        mean += Ks @ self.alpha_
-        mean = self._y_std * mean + self._y_mean
+        mean = self.y_std_ * (mean + cross.T @ self.alpha_) + self.y_mean_
+        if return_cov:
+            cov = self.posterior_covariance(X, basis=basis)
+            if observation:
+                cov[np.diag_indices_from(cov)] += self.noise_ * self.y_std_**2
+            return mean, cov
         if not return_std:
             return mean
-        # Alg 2.1 line 5-6: v = L \ k*, var = k** - v^T v (no data: the prior variance)
-        V = (
-            solve_triangular(self.L_, Ks.T, lower=CHOLESKY_LOWER, check_finite=False)
-            if self.L_.size
-            else np.zeros((0, X.shape[0]))
-        )
+        prior_var = self.kernel_.diag(X).copy()
+        if self.basis_train_ is not None:
+            B = self._check_basis(basis, X)
+            prior_var += np.einsum("ij,jk,ik->i", B, self.basis_prior[1], B)
+        # Alg 2.1 lines 5-6: v = L \ k*, var = k** - v^T v (no data: the prior variance)
+        V = solve_lower(self.L_, cross) if self.L_.size else np.zeros((0, X.shape[0]))
         var = prior_var - np.einsum("ij,ij->j", V, V)
         var = np.maximum(var, 0.0) + (self.noise_ if observation else 0.0)
-        return mean, np.sqrt(var) * self._y_std
+        return mean, np.sqrt(var) * self.y_std_
 
-    def posterior_covariance(self, X: np.ndarray, Z: np.ndarray | None = None) -> np.ndarray:
+    def posterior_covariance(
+        self,
+        X: np.ndarray,
+        Z: np.ndarray | None = None,
+        *,
+        basis: np.ndarray | None = None,
+        basis_z: np.ndarray | None = None,
+    ) -> np.ndarray:
         """Posterior covariance ``(n x m)`` of the latent function between ``X (n x dim)`` and
-        ``Z (m x dim)`` (``Z = X`` if None), in the units of ``y`` squared; models without basis functions.
+        ``Z (m x dim)`` (``Z = X`` if None), in the units of ``y`` squared.
 
         ``k(X, Z) - V_X^T V_Z`` with ``V = L \\ k(X_train, .)`` (Rasmussen and Williams 2006, eq. 2.24;
-        Algorithm 2.1 line 5 in covariance form).
+        :func:`gapgauge.compare.linalg.posterior_covariance`), the basis prior ``H_X^T B H_Z`` added to
+        every prior covariance when the model has basis functions (``basis (n x p)``, ``basis_z (m x p)``).
         """
-        if self.basis_train_ is not None:
-            raise ValueError("posterior_covariance is for models without basis functions")
         X = np.atleast_2d(np.asarray(X, dtype=float))
-        cov = self.kernel_(X, Z)
-        if self.L_.size:
-            VX = solve_triangular(self.L_, self.kernel_(self.X_train_, X), lower=CHOLESKY_LOWER, check_finite=False)
-            VZ = (
-                VX
-                if Z is None
-                else solve_triangular(self.L_, self.kernel_(self.X_train_, Z), lower=CHOLESKY_LOWER, check_finite=False)
-            )
-            cov = cov - VX.T @ VZ
-        return cov * self._y_std**2
+        Zq = X if Z is None else np.atleast_2d(np.asarray(Z, dtype=float))
+        prior = self.kernel_(X, Z)
+        cross_x = self._prior_cross(X, basis)
+        cross_z = None if Z is None else self._prior_cross(Zq, basis_z)
+        if self.basis_train_ is not None:
+            bx = self._check_basis(basis, X)
+            bz = bx if Z is None else self._check_basis(basis_z, Zq)
+            prior = prior + bx @ self.basis_prior[1] @ bz.T
+        return posterior_covariance(prior, self.L_, cross_x, cross_z) * self.y_std_**2
+
+    def sample_y(
+        self,
+        X: np.ndarray,
+        n_samples: int = 1,
+        random_state: int | np.random.Generator | None = None,
+        *,
+        basis: np.ndarray | None = None,
+    ) -> np.ndarray:
+        """``(n x n_samples)`` joint draws of the latent function at ``X (n x dim)`` from the posterior
+        ``N(mean, cov)`` of :meth:`predict` (``return_cov=True``), as scikit-learn's ``sample_y``."""
+        mean, cov = self.predict(X, return_cov=True, basis=basis)
+        return draw_gaussian(mean, cov, n_samples, random_state)
 
     # ---- storage --------------------------------------------------------------------------
     def to_state(self) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
-        """JSON-able parameters and arrays enough to predict without refitting (no pickle)."""
+        """JSON-able parameters and arrays that restore predictions, draws and the (penalised) log
+        marginal likelihood without refitting (no pickle). A :class:`WithFixedCovariance` kernel
+        stores its base kernel only; its owner rebuilds the fixed term."""
         params = {
             "model": "ExactGP",
             "kernel": self.kernel_.get_params(),
             "noise": self.noise_,
             "normalize_y": self.normalize_y,
-            "y_mean": self._y_mean,
-            "y_std": self._y_std,
+            "n_restarts": self.n_restarts,
+            "y_mean": self.y_mean_,
+            "y_std": self.y_std_,
             "has_basis": self.basis_train_ is not None,
+            "has_hyperprior": self.hyperprior is not None,
         }
         arrays = {
             "X_train": self.X_train_,
@@ -332,6 +379,8 @@ class ExactGP:
             "L": self.L_,
             "extra_diagonal": np.broadcast_to(np.asarray(self.alpha, float), self.y_train_.shape).copy(),
         }
+        if self.hyperprior is not None:
+            arrays["hyperprior"] = np.asarray(self.hyperprior, dtype=float)
         if self.basis_train_ is not None:
             arrays.update(
                 basis_train=self.basis_train_,
@@ -344,40 +393,50 @@ class ExactGP:
 
     @classmethod
     def from_state(cls, params: dict[str, Any], arrays: dict[str, np.ndarray]) -> ExactGP:
+        """The model of :meth:`to_state`, fitted state included (``optimize`` off)."""
         kernel = Matern52(params["kernel"]["variance"], np.asarray(params["kernel"]["length_scale"]))
-        basis_prior = (arrays["basis_mean"], arrays["basis_cov"]) if params["has_basis"] else None
+        has_basis = bool(params["has_basis"])
+        basis_prior = (np.asarray(arrays["basis_mean"]), np.asarray(arrays["basis_cov"])) if has_basis else None
         gp = cls(
             kernel,
             params["noise"],
             alpha=np.asarray(arrays["extra_diagonal"]),
             normalize_y=params["normalize_y"],
             optimize=False,
+            n_restarts=int(params.get("n_restarts", 2)),
+            hyperprior=np.asarray(arrays["hyperprior"]) if params.get("has_hyperprior") else None,
             basis_prior=basis_prior,
         )
         gp.kernel_ = kernel
         gp.noise_ = float(params["noise"])
-        gp._y_mean, gp._y_std = float(params["y_mean"]), float(params["y_std"])
-        gp.X_train_ = np.asarray(arrays["X_train"])
-        gp.y_train_ = np.asarray(arrays["y_train"])
-        gp.alpha_ = np.asarray(arrays["alpha_vector"])
-        gp.L_ = np.asarray(arrays["L"])
-        gp.basis_train_ = np.asarray(arrays["basis_train"]) if params["has_basis"] else None
-        gp.coef_ = np.asarray(arrays["coef"]) if params["has_basis"] else None
-        gp.coef_cov_ = np.asarray(arrays["coef_cov"]) if params["has_basis"] else None
+        gp.y_mean_, gp.y_std_ = float(params["y_mean"]), float(params["y_std"])
+        gp.X_train_ = np.asarray(arrays["X_train"], dtype=float).reshape(-1, kernel.length_scale.size)
+        gp.y_train_ = np.asarray(arrays["y_train"], dtype=float)
+        gp.alpha_ = np.asarray(arrays["alpha_vector"], dtype=float)
+        gp.L_ = np.asarray(arrays["L"], dtype=float).reshape(gp.y_train_.size, gp.y_train_.size)
+        gp.basis_train_ = np.asarray(arrays["basis_train"]) if has_basis else None
+        gp.coef_ = np.asarray(arrays["coef"]) if has_basis else None
+        gp.coef_cov_ = np.asarray(arrays["coef_cov"]) if has_basis else None
         return gp
 
+    # kept for compare/budget.py until it reads y_mean_ / y_std_ (issue 12); delete then
+    @property
+    def _y_mean(self) -> float:
+        return self.y_mean_
 
-def _cholesky(K: np.ndarray) -> np.ndarray:
-    try:
-        return cholesky(K, lower=CHOLESKY_LOWER, check_finite=False)
-    except np.linalg.LinAlgError:
-        # near-duplicate inputs with tiny noise make K singular in floating point; a jitter of
-        # 1e-8 of the mean diagonal restores definiteness without visibly changing predictions
-        jitter = 1e-8 * float(np.mean(np.diag(K)))
-        try:
-            return cholesky(K + jitter * np.eye(K.shape[0]), lower=CHOLESKY_LOWER, check_finite=False)
-        except np.linalg.LinAlgError as exc:
-            raise ModelError(
-                "the GP covariance is not positive definite even with jitter; remove duplicate "
-                "parameter sets or allow more noise"
-            ) from exc
+    @property
+    def _y_std(self) -> float:
+        return self.y_std_
+
+
+def draw_gaussian(
+    mean: np.ndarray, cov: np.ndarray, n_samples: int, random_state: int | np.random.Generator | None
+) -> np.ndarray:
+    """``(n x n_samples)`` draws of ``N(mean (n,), cov (n x n))``: ``mean + L z`` with ``L`` the jittered
+    square root of :func:`~gapgauge.compare.linalg.cholesky_jittered` (eigen fallback on) and ``z``
+    standard normal from ``numpy.random.default_rng(random_state)``."""
+    if n_samples < 1:
+        raise ValueError(f"n_samples must be at least 1, got {n_samples}")
+    rng = np.random.default_rng(random_state)
+    L = cholesky_jittered(0.5 * (cov + cov.T), eigen_fallback=True)
+    return mean[:, None] + L @ rng.standard_normal((mean.size, int(n_samples)))

@@ -38,6 +38,12 @@ The predictive mean is ``E[rho] mu_low(x) + mu_delta(x)`` and the variance the h
 posterior variance, which holds ``rho0^2 C_low`` conditioned on the trials, the discrepancy and the
 coefficients' uncertainty.
 Outputs are standardised with the simulation level's mean and sd; inputs are in the unit cube.
+
+The surface is that of every model here (:mod:`gapgauge.compare.gp`): ``fit`` returns self,
+``predict(X, return_std=False, return_cov=False)``, ``sample_y``, ``log_marginal_likelihood``,
+``to_state`` / ``from_state``; fitted state ends in ``_`` (``low_``, ``delta_``, ``y_mean_``, ``y_std_``,
+``rho_``, ``rho_sd_``, ``rho_interval_``). :meth:`MultiFidelityGP.fit_high` and
+:meth:`MultiFidelityGP.copy_with_high` refit the hardware level alone on a fitted simulation level.
 """
 
 from __future__ import annotations
@@ -48,11 +54,12 @@ import numpy as np
 from scipy.stats import norm
 
 from ..errors import ModelError
-from .gp import ExactGP
+from .gp import ExactGP, draw_gaussian
 from .kernels import Matern52, WithFixedCovariance, default_length_scale
 from .sparse import SparseGP
 
-# above this many simulation points the simulation level is the sparse GP: the exact GP's n^3 fit
+# above this many simulation points (rollouts that stood, for the objective; rollouts with a margin, for
+# the fall model) the simulation level is the sparse GP: the exact GP's n^3 fit
 # with 15 hyperparameters took over 100 s at n = 2000 on the 2-core machine, the sparse GP ~5 s
 SPARSE_THRESHOLD = 500
 # The simulation level's hyperparameters are those of the exact GP on a random subsample of this many
@@ -96,6 +103,11 @@ class MultiFidelityGP:
         trend_prior_sd: sd of the discrepancy's linear trend across the unit cube (simulation-sd
             units, shared among the dimensions), or None for no trend.
         random_state: seed or Generator (sparse subsample, k-means++, restarts).
+
+    Fitted attributes: ``low_`` (the simulation level, an ExactGP or SparseGP in objective units),
+    ``delta_`` (the hardware-level ExactGP in simulation-sd units, basis ``[low mean, 1, x - 0.5]``),
+    ``y_mean_``, ``y_std_`` (the simulation level's mean and sd), ``dim_``, ``rho0_sq_``,
+    ``seed_high_`` (seed of the hardware level's restarts), ``X_high_ (k x dim)``, ``y_high_ (k,)``.
     """
 
     def __init__(
@@ -131,7 +143,7 @@ class MultiFidelityGP:
         if y_low.size == 0:
             raise ModelError("the multi-fidelity prior needs simulated points at the low level")
         rng = np.random.default_rng(self.random_state)
-        self._seed_high = int(rng.integers(2**31))
+        self.seed_high_ = int(rng.integers(2**31))
         if y_low.size > self.sparse_threshold:
             low: SparseGP | ExactGP = SparseGP(
                 n_inducing=self.max_inducing,
@@ -155,7 +167,7 @@ class MultiFidelityGP:
 
     def low_noise_variance(self) -> float:
         """The simulation level's noise variance in simulation-sd units squared."""
-        return float(self.low_.noise_ * (self.low_._y_std / self.y_std_) ** 2)
+        return float(self.low_.noise_ * (self.low_.y_std_ / self.y_std_) ** 2)
 
     def _hyperprior(self) -> np.ndarray:
         dim = self.dim_
@@ -231,7 +243,7 @@ class MultiFidelityGP:
                 n_restarts=self.n_restarts,
                 hyperprior=hyperprior,
                 basis_prior=self._basis_prior(),
-                random_state=self._seed_high,
+                random_state=self.seed_high_,
             )
             self.delta_ = delta.fit(X_high, targets, basis=basis)
         self.rho0_sq_ = rho0_sq
@@ -252,6 +264,11 @@ class MultiFidelityGP:
         """Central interval of rho's Gaussian posterior (R&W eq. 2.42, hyperparameters at the MAP)."""
         half = norm.ppf(0.5 + level / 2) * self.rho_sd_
         return self.rho_ - half, self.rho_ + half
+
+    @property
+    def rho_interval_(self) -> tuple[float, float]:
+        """The 95% central interval of rho's posterior (:meth:`rho_interval`)."""
+        return self.rho_interval(0.95)
 
     @property
     def discrepancy_scale_(self) -> float:
@@ -276,20 +293,32 @@ class MultiFidelityGP:
         return self.delta_.log_marginal_likelihood(theta, eval_gradient)
 
     def predict(
-        self, X: np.ndarray, return_std: bool = False, observation: bool = False
+        self, X: np.ndarray, return_std: bool = False, return_cov: bool = False, *, observation: bool = False
     ) -> np.ndarray | tuple[np.ndarray, np.ndarray]:
-        """Hardware-level mean (and sd) at ``X (n x dim)`` (unit cube), in objective units.
+        """Hardware-level mean ``(n,)`` at ``X (n x dim)`` (unit cube), objective units; with
+        ``return_std`` its sd ``(n,)``, with ``return_cov`` its covariance ``(n x n)`` (units squared).
 
-        The sd is of the latent hardware function (the hardware-level GP's posterior sd, its prior
-        covariance holding ``rho0^2 C_low``); with ``observation`` the hardware noise is added.
+        The sd and covariance are of the latent hardware function: the hardware-level GP's posterior,
+        its prior covariance holding ``rho0^2 C_low`` and the basis coefficients' prior, so the
+        simulation level's own uncertainty is not added again; with ``observation`` the hardware
+        noise is added on the diagonal.
         """
         X = np.atleast_2d(np.asarray(X, dtype=float))
         mu, _ = self._low_standardised(X)
         basis = self._basis(X, mu)
-        if not return_std:
-            return self.delta_.predict(X, basis=basis) * self.y_std_ + self.y_mean_
-        mean, sd = self.delta_.predict(X, return_std=True, basis=basis, observation=observation)
-        return mean * self.y_std_ + self.y_mean_, sd * self.y_std_
+        out = self.delta_.predict(X, return_std, return_cov, basis=basis, observation=observation)
+        if not (return_std or return_cov):
+            return out * self.y_std_ + self.y_mean_
+        mean, spread = out
+        return mean * self.y_std_ + self.y_mean_, spread * (self.y_std_**2 if return_cov else self.y_std_)
+
+    def sample_y(
+        self, X: np.ndarray, n_samples: int = 1, random_state: int | np.random.Generator | None = None
+    ) -> np.ndarray:
+        """``(n x n_samples)`` joint draws of the latent hardware function at ``X (n x dim)`` from
+        ``N(mean, cov)`` of :meth:`predict` (``return_cov=True``), objective units."""
+        mean, cov = self.predict(X, return_cov=True)
+        return draw_gaussian(mean, cov, n_samples, random_state)
 
     def predict_low(
         self, X: np.ndarray, return_std: bool = False, observation: bool = False
@@ -316,7 +345,7 @@ class MultiFidelityGP:
             "sparse_threshold": self.sparse_threshold,
             "n_restarts": self.n_restarts,
             "trend_prior_sd": self.trend_prior_sd,
-            "seed_high": self._seed_high,
+            "seed_high": self.seed_high_,
             "rho0_sq": self.rho0_sq_,
             "y_mean": self.y_mean_,
             "y_std": self.y_std_,
@@ -344,7 +373,7 @@ class MultiFidelityGP:
         delta_arrays = {k[6:]: v for k, v in arrays.items() if k.startswith("delta.")}
         low_cls = SparseGP if params["low"]["model"] == "SparseGP" else ExactGP
         model.low_ = low_cls.from_state(params["low"], low_arrays)
-        model._seed_high = int(params["seed_high"])
+        model.seed_high_ = int(params["seed_high"])
         model.y_mean_, model.y_std_ = float(params["y_mean"]), float(params["y_std"])
         model.dim_ = int(params["dim"])
         if "rho0_sq" not in params:

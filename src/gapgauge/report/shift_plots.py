@@ -1,24 +1,24 @@
 """Plots of the shift assessment: per feature, the simulated distribution at each trial's parameters
 with the hardware value on it, and the standardised residuals against the residual limit.
 
-Two entry points: :func:`plot_shift` writes PNGs from a :class:`~gapgauge.compare.shift.ShiftReport`;
-:func:`shift_figures` returns PNG bytes from the stored JSON form (what the HTML report reads).
+Both entry points take a :class:`~gapgauge.compare.shift.ShiftReport`: :func:`shift_figures` returns
+PNG bytes per feature (what the HTML report embeds), :func:`plot_shift` writes them as files.
 Matplotlib runs on the Agg backend (no display needed).
 """
 
 from __future__ import annotations
 
 import io
-import math
 import re
 from pathlib import Path
-from typing import Any
 
 import matplotlib
 
 matplotlib.use("Agg")
 import matplotlib.pyplot as plt  # noqa: E402  (after choosing the backend)
 import numpy as np  # noqa: E402
+
+from ..compare.shift import ShiftReport  # noqa: E402
 
 VERDICT_COLOURS = {
     "carries_over": "#1b7837",
@@ -105,50 +105,36 @@ def _safe_name(name: str) -> str:
     return re.sub(r"[^A-Za-z0-9_.-]+", "_", name) or "feature"
 
 
-def plot_shift(report: Any, plots_dir: str | Path) -> list[Path]:
-    """Write ``shift_<feature>.png`` per feature of a ShiftReport into ``plots_dir``; return the paths."""
+def shift_figures(report: ShiftReport) -> dict[str, bytes]:
+    """PNG bytes per feature name, in the report's feature order.
+
+    Draws each trial's matched simulations from ``report.simulated_values (n x K x f)`` when the
+    report carries them, otherwise the simulated mean +- 2 sd per trial.
+    """
+    limit = float(report.settings.residual_limit)
+    simulated = report.simulated_values
+    if simulated is not None and (simulated.ndim != 3 or simulated.shape[2] != len(report.features)):
+        simulated = None
+    out = {}
+    for j, feature in enumerate(report.features):
+        hardware = np.asarray(feature.hardware, float)
+        labels = [str(t) for t in report.trial_ids]
+        out[feature.name] = feature_png(
+            feature.name, hardware, None if simulated is None else simulated[:, :, j],
+            np.asarray(feature.residuals, float), limit, feature.verdict,
+            np.asarray(feature.simulated_mean, float), np.asarray(feature.simulated_sd, float),
+            labels if len(labels) == hardware.size else None,
+        )
+    return out
+
+
+def plot_shift(report: ShiftReport, plots_dir: str | Path) -> list[Path]:
+    """Write ``shift_<feature>.png`` per feature of ``report`` into ``plots_dir``; return the paths."""
     out_dir = Path(plots_dir)
     out_dir.mkdir(parents=True, exist_ok=True)
-    limit = float(report.settings["residual_limit"])
-    labels = [str(t) for t in report.trial_ids]
     paths = []
-    for j, feature in enumerate(report.features):
-        sims = None if report.simulated_values is None else report.simulated_values[:, :, j]
-        png = feature_png(feature.name, np.asarray(feature.hardware, float), sims,
-                          np.asarray(feature.residuals, float), limit, feature.verdict,
-                          np.asarray(feature.simulated_mean, float), np.asarray(feature.simulated_sd, float),
-                          labels)
-        path = out_dir / f"shift_{_safe_name(feature.name)}.png"
+    for name, png in shift_figures(report).items():
+        path = out_dir / f"shift_{_safe_name(name)}.png"
         path.write_bytes(png)
         paths.append(path)
     return paths
-
-
-def shift_figures(
-    scenario: Any, shift: dict[str, Any], trials: Any, arrays: dict[str, np.ndarray]
-) -> dict[str, bytes]:
-    """PNG bytes per feature name from the stored JSON form of a shift assessment.
-
-    ``arrays`` may hold ``simulated (n x K x p)`` (feature units, columns in the JSON's feature order);
-    without it the simulated mean +- 2 sd per trial is drawn.
-    """
-    features = [f for f in (shift or {}).get("features", []) if isinstance(f, dict)]
-    limit = float((shift.get("settings") or {}).get("residual_limit", 2.0))
-    simulated = arrays.get("simulated") if arrays else None
-    labels = [str(t) for t in shift.get("trial_ids", [])] or None
-    out = {}
-
-    def values(f: dict, key: str) -> np.ndarray:
-        return np.array([math.nan if v is None else float(v) for v in f.get(key) or []], float)
-
-    for j, f in enumerate(features):
-        sims = None
-        if simulated is not None and np.ndim(simulated) == 3 and np.shape(simulated)[2] == len(features):
-            sims = np.asarray(simulated, float)[:, :, j]
-        hw = values(f, "hardware")
-        out[f.get("name", str(j))] = feature_png(
-            str(f.get("name", j)), hw, sims, values(f, "residuals"), limit, str(f.get("verdict", "")),
-            values(f, "simulated_mean"), values(f, "simulated_sd"),
-            labels if labels and len(labels) == hw.size else None,
-        )
-    return out

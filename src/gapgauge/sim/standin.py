@@ -2,7 +2,7 @@
 
 No robot is attached to this project's machines (DESIGN.md section 6). The stand-in simulates the
 requested parameter sets on perturbed physics, then corrupts what a logger would see and writes logs
-in exactly the hardware contract of :mod:`gapgauge.store.logs`: the scenario's column names and units
+in exactly the hardware contract of :mod:`gapgauge.logs`: the scenario's column names and units
 (e.g. degrees and millimetres), a sidecar JSON with ``"synthetic": true`` and a note that says so. It
 serves the demo, the tests and the benchmarks.
 
@@ -47,9 +47,10 @@ import numpy as np
 from scipy.stats import qmc
 
 from ..errors import GapgaugeError, ScenarioError
-from ..scenario import PHYSICS_NAMES, Scenario
+from ..scenario import PHYSICS_NAMES, Scenario, load_scenario
 from ..trajectory import CHANNELS
 from ..units import UNITS, factor
+from .rollout import simulate
 
 if sys.version_info >= (3, 11):
     import tomllib
@@ -235,47 +236,48 @@ def safe_design(scenario: Scenario, n: int, seed: int) -> np.ndarray:
 
 
 def run_standin(
-    scenario: Scenario,
+    scenario: Scenario | str | Path,
     profile_path: str | Path,
     params_list: list[dict[str, float]] | str | Path | None = None,
     design: int | None = None,
     out_dir: str | Path = "standin-logs",
     seed: int = 0,
+    source: str | Path | None = None,
 ) -> list[Path]:
     """Simulate parameter sets on the stand-in robot and write one synthetic log (CSV + sidecar) each.
 
     Args:
-        scenario: the scenario; its ``[hardware]`` table fixes the columns and units written.
+        scenario: the scenario (or its path); its ``[hardware]`` table fixes the columns and units written.
         profile_path: the perturbation profile (TOML).
         params_list: parameter sets by name (inside the scenario's bounds), or a JSON file of them (see
             :func:`load_params_file`); or None with ``design``.
         design: draw this many Sobol sets inside the SAFE bounds instead (seeded by ``seed``).
         out_dir: folder for ``standin_<profile>_s<seed>_<i>.csv`` and ``.json`` (created; files overwritten).
         seed: seeds the design and the sensor corruption (log ``i`` uses ``default_rng([seed, i])``).
+        source: the file ``params_list`` was read from, when it was read by the caller (for messages).
 
     Returns:
         The written CSV paths, in parameter-set order. A set whose simulation diverged gets no log.
     """
-    from .rollout import simulate  # heavy (mujoco); load on use
-
+    scenario = scenario if isinstance(scenario, Scenario) else load_scenario(scenario)
     if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or seed < 0:
         raise ScenarioError(f"seed must be a non-negative integer, got {seed!r}")
     profile = load_profile(profile_path, scenario)
     if (params_list is None) == (design is None):
         raise ScenarioError(
-            "give either parameter sets (--params) or a design size (--design), not both or neither"
+            "give either parameter sets (params_list) or a design size (design), not both or neither"
         )
     if design is not None:
         if not 1 <= design <= MAX_LOGS:
-            raise ScenarioError(f"--design {design}: give between 1 and {MAX_LOGS} parameter sets")
+            raise ScenarioError(f"design {design}: give between 1 and {MAX_LOGS} parameter sets")
         params = safe_design(scenario, design, seed)
     else:
-        if len(params_list) > MAX_LOGS:
-            raise ScenarioError(f"{len(params_list)} parameter sets is more than {MAX_LOGS}; split them")
-        source = ""
-        if isinstance(params_list, (str, Path)):
+        source = "" if source is None else f"{source}: "
+        if isinstance(params_list, (str, Path)):  # a file: load it before counting its sets
             source = f"{params_list}: "
             params_list = load_params_file(params_list)
+        if len(params_list) > MAX_LOGS:
+            raise ScenarioError(f"{source}{len(params_list)} parameter sets is more than {MAX_LOGS}; split them")
         rows = []
         for i, mapping in enumerate(params_list):
             try:

@@ -1,232 +1,46 @@
-"""The store: one SQLite file (standard library, WAL) holding scenarios, runs, sim rollouts, hardware
-trials, matches and fitted models. Schema in :mod:`gapgauge.store.schema`, read-side queries in
-:mod:`gapgauge.store.queries`.
+"""The store: one SQLite file holding scenarios, runs, sim rollouts, hardware trials, matches, fitted
+models and typed results. The connection (WAL, retries, migration) is :mod:`gapgauge.store.connection`,
+the schema :mod:`gapgauge.store.schema`, the read-side SQL :mod:`gapgauge.store.queries`.
 
-Durability: every write is one ``BEGIN IMMEDIATE ... COMMIT`` transaction, so a crash (even kill -9)
-loses at most the write in flight. Rollouts are ``UNIQUE(run_id, idx)`` and written with
-``INSERT OR IGNORE``, so a resumed run never duplicates a row. Concurrency: WAL lets readers and one
-writer work at once; other writers wait (``busy_timeout``) and a write that still finds the
-database locked is retried with exponential backoff.
+Rollouts are ``UNIQUE(run_id, idx)`` and written with ``INSERT OR IGNORE``, so a resumed run never
+duplicates a row.
 """
 
 from __future__ import annotations
 
 import sqlite3
-import threading
-import time
-from collections.abc import Callable, Iterable, Sequence
-from dataclasses import dataclass
-from datetime import datetime, timezone
+from collections.abc import Iterable, Sequence
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, TypeVar
 
 import numpy as np
 
-from ..version import __version__
 from ..errors import StoreError
 from ..records import RolloutBatch, TrialRecord
+from ..version import __version__
 from . import codec, queries, schema
+from .connection import Connection, utc_now
+from .queries import RunRecord
 
 if TYPE_CHECKING:
     from ..scenario import Scenario
     from ..trajectory import Trajectory
 
-T = TypeVar("T")
 R = TypeVar("R")
 
-SQLITE_HEADER = b"SQLite format 3\x00"
-BUSY_TIMEOUT_MS = 30_000
-RETRIES = 8  # on "database is locked" after the busy timeout: 0.05 s doubling, about 13 s more in all
-RETRY_FIRST_WAIT_S = 0.05
 
-
-def utc_now() -> str:
-    """ISO-8601 time in UTC, seconds."""
-    return datetime.now(timezone.utc).isoformat(timespec="seconds")
-
-
-@dataclass(frozen=True)
-class RunRecord:
-    """One run: a planned set of rollouts of one scenario (kind ``sweep``, ``match``, ``standin`` or
-    ``calibration``). ``done`` counts the rollouts stored so far."""
-
-    id: int
-    kind: str
-    scenario_hash: str
-    seed: int
-    design: str
-    planned: int
-    nominal: bool
-    config: dict
-    status: str  # "running" | "done"
-    done: int
-    created_at: str
-
-
-class Store:
-    """A gapgauge store (one SQLite file). Use as a context manager, or call :meth:`close`.
+class Store(Connection):
+    """A gapgauge store (one SQLite file): what is stored and how it is read back.
 
     Opening creates the file if needed (unless ``create=False``), migrates an older schema after
     writing a backup copy ``<store>.v<old>.bak``, and refuses a newer schema or a file that is not a
     gapgauge store with a :class:`StoreError`. One ``Store`` may be shared by threads; its calls are
-    serialised.
+    serialised. Use as a context manager, or call :meth:`close`.
     """
 
     def __init__(self, path: str | Path = "gapgauge.sqlite", *, create: bool = True):
-        self.path = Path(path)
-        self._lock = threading.RLock()
-        self.backup_path: Path | None = None  # set when opening migrated an older schema
         self._run_columns_cache: dict[int, dict[str, list[str]]] = {}  # scenario versions never change
-        if not create and not self.path.exists():
-            raise StoreError(f"{self.path}: no store here; run `gapgauge sweep` first or give --store PATH")
-        self._check_file()
-        try:
-            self._conn = sqlite3.connect(
-                str(self.path), timeout=BUSY_TIMEOUT_MS / 1000, isolation_level=None, check_same_thread=False
-            )
-        except sqlite3.Error as exc:
-            raise StoreError(
-                f"{self.path}: cannot open the store ({exc}); check the path and its permissions"
-            ) from None
-        try:
-            self._retry(self._configure)
-            self._retry(self._prepare_schema)
-        except sqlite3.DatabaseError as exc:
-            self._conn.close()
-            raise StoreError(
-                f"{self.path}: is not a usable SQLite database ({exc}); give a gapgauge store or a new file name"
-            ) from None
-        except BaseException:
-            self._conn.close()
-            raise
-
-    # ---- opening ---------------------------------------------------------------------------
-    def _check_file(self) -> None:
-        if self.path.is_dir():
-            raise StoreError(f"{self.path}: is a folder; give a store file such as {self.path / 'gapgauge.sqlite'}")
-        if not self.path.parent.exists():
-            raise StoreError(
-                f"{self.path}: folder {self.path.parent} does not exist; create it or pick another --store"
-            )
-        if self.path.exists() and self.path.stat().st_size > 0:
-            with open(self.path, "rb") as fh:
-                head = fh.read(len(SQLITE_HEADER))
-            if head != SQLITE_HEADER:
-                raise StoreError(
-                    f"{self.path}: is not a SQLite database (no SQLite header); "
-                    "give a gapgauge store or a new file name"
-                )
-
-    def _configure(self) -> None:
-        self._conn.execute(f"PRAGMA busy_timeout = {BUSY_TIMEOUT_MS}")
-        mode = self._conn.execute("PRAGMA journal_mode = WAL").fetchone()[0]
-        if str(mode).lower() != "wal":
-            raise StoreError(
-                f"{self.path}: SQLite could not switch to WAL mode (got {mode}); put the store on a local disk"
-            )
-        # With WAL, NORMAL keeps every committed transaction through a process crash (kill -9).
-        self._conn.execute("PRAGMA synchronous = NORMAL")
-        self._conn.execute("PRAGMA foreign_keys = ON")
-
-    def _prepare_schema(self) -> None:
-        conn = self._conn
-        conn.execute("BEGIN IMMEDIATE")
-        try:
-            version = schema.read_version(conn)
-            if version is None:
-                if schema.user_tables(conn):
-                    raise StoreError(
-                        f"{self.path}: is a SQLite database but not a gapgauge store (no gapgauge meta table); "
-                        "give a gapgauge store or a new file name"
-                    )
-                schema.create_schema(conn)
-            elif version > schema.SCHEMA_VERSION:
-                raise StoreError(
-                    f"{self.path}: store schema version {version} is newer than this gapgauge "
-                    f"({__version__}) reads (version {schema.SCHEMA_VERSION}); upgrade gapgauge "
-                    "(pip install -U gapgauge) or use another --store"
-                )
-            elif version < schema.SCHEMA_VERSION:
-                self.backup_path = self._backup(version)
-                try:
-                    schema.migrate(conn, version, schema.SCHEMA_VERSION)
-                except KeyError as exc:
-                    raise StoreError(
-                        f"{self.path}: no migration from store schema version {exc.args[0]}; "
-                        f"a backup is at {self.backup_path}; open it with the gapgauge version that wrote it"
-                    ) from None
-            conn.execute("COMMIT")
-        except BaseException:
-            conn.execute("ROLLBACK")
-            raise
-
-    def _backup(self, version: int) -> Path:
-        """Copy the store (as committed) to ``<store>.v<version>.bak`` with SQLite's online backup.
-
-        Called while this connection holds the write lock, so the copy is read through a second
-        connection (WAL readers see the last committed state: the store before migration).
-        """
-        target = self.path.with_name(f"{self.path.name}.v{version}.bak")
-        n = 1
-        while target.exists():
-            n += 1
-            target = self.path.with_name(f"{self.path.name}.v{version}.{n}.bak")
-        source = sqlite3.connect(str(self.path), timeout=BUSY_TIMEOUT_MS / 1000)
-        dest = sqlite3.connect(str(target))
-        try:
-            source.backup(dest)
-        finally:
-            dest.close()
-            source.close()
-        return target
-
-    # ---- transactions ----------------------------------------------------------------------
-    def _retry(self, action: Callable[[], T]) -> T:
-        """Run ``action``; on "database is locked/busy" wait (0.05 s doubling) and try again."""
-        wait = RETRY_FIRST_WAIT_S
-        for attempt in range(RETRIES + 1):
-            try:
-                with self._lock:
-                    return action()
-            except sqlite3.OperationalError as exc:
-                text = str(exc).lower()
-                if ("locked" not in text and "busy" not in text) or attempt == RETRIES:
-                    if "locked" in text or "busy" in text:
-                        raise StoreError(
-                            f"{self.path}: the store stayed locked by another process; "
-                            "wait for it to finish or check no stuck process holds the file"
-                        ) from None
-                    raise self._damaged(exc) from None
-                time.sleep(wait)
-                wait *= 2
-            except sqlite3.DatabaseError as exc:
-                if type(exc) is not sqlite3.DatabaseError:  # IntegrityError, ProgrammingError: our bugs
-                    raise
-                raise self._damaged(exc) from None
-        raise AssertionError("unreachable")
-
-    def _damaged(self, exc: sqlite3.Error) -> StoreError:
-        return StoreError(f"{self.path}: SQLite cannot use the store ({exc}); run `gapgauge store check --store "
-                          f"{self.path}` and restore the file from a backup if it reports damage")
-
-    def _write(self, body: Callable[[sqlite3.Connection], T]) -> T:
-        """Run ``body(conn)`` in one write transaction (retried as a whole when locked)."""
-
-        def action() -> T:
-            self._conn.execute("BEGIN IMMEDIATE")
-            try:
-                result = body(self._conn)
-                self._conn.execute("COMMIT")
-            except BaseException:
-                if self._conn.in_transaction:
-                    self._conn.execute("ROLLBACK")
-                raise
-            return result
-
-        return self._retry(action)
-
-    def _read(self, sql: str, args: Sequence[Any] = ()) -> list[tuple]:
-        return self._retry(lambda: self._conn.execute(sql, args).fetchall())
+        super().__init__(path, create=create)
 
     # ---- scenarios and runs ----------------------------------------------------------------
     def add_scenario(self, scenario: Scenario) -> str:
@@ -269,7 +83,7 @@ class Store:
         """The run with this id; StoreError if there is none."""
         rows = self._read(queries.RUNS + " WHERE r.id = ? GROUP BY r.id", (int(run_id),))
         if not rows:
-            raise StoreError(f"{self.path}: no run {run_id}; see `gapgauge info --store {self.path}`")
+            raise StoreError(f"{self.path}: no run {run_id}; see what the store holds (its info)")
         return queries.run_record(rows[0])
 
     def runs(self, scenario_hash: str | None = None, kind: str | None = None) -> list[RunRecord]:
@@ -354,8 +168,8 @@ class Store:
         rows = self._read("SELECT columns_json FROM scenarios WHERE hash = ?", (scenario_hash,))
         if not rows:
             raise StoreError(
-                f"{self.path}: no scenario with hash {scenario_hash}; run `gapgauge sweep` on it first"
-                f" or see `gapgauge info --store {self.path}`"
+                f"{self.path}: no scenario with hash {scenario_hash}; sweep it first"
+                f" or see what the store holds (its info)"
             )
         return codec.json.loads(rows[0][0])
 
@@ -363,7 +177,7 @@ class Store:
         if run_id not in self._run_columns_cache:
             rows = self._read("SELECT scenario_hash FROM runs WHERE id = ?", (int(run_id),))
             if not rows:
-                raise StoreError(f"{self.path}: no run {run_id}; see `gapgauge info --store {self.path}`")
+                raise StoreError(f"{self.path}: no run {run_id}; see what the store holds (its info)")
             self._run_columns_cache[run_id] = self._columns(rows[0][0])
         return self._run_columns_cache[run_id]
 
@@ -401,7 +215,7 @@ class Store:
         """The stored resampled series (a :class:`~gapgauge.trajectory.Trajectory`) of a trial, or None."""
         rows = self._read("SELECT series_npz FROM trials WHERE id = ?", (int(trial_id),))
         if not rows:
-            raise StoreError(f"{self.path}: no trial {trial_id}; see `gapgauge info --store {self.path}`")
+            raise StoreError(f"{self.path}: no trial {trial_id}; see what the store holds (its info)")
         return None if rows[0][0] is None else codec.npz_to_trajectory(rows[0][0])
 
     def link_matches(self, trial_id: int, run_id: int, indices: Iterable[int]) -> None:
@@ -414,7 +228,7 @@ class Store:
         """The matched simulations of a trial, ordered by run and index (row 0: nominal physics)."""
         rows = self._read("SELECT scenario_hash FROM trials WHERE id = ?", (int(trial_id),))
         if not rows:
-            raise StoreError(f"{self.path}: no trial {trial_id}; see `gapgauge info --store {self.path}`")
+            raise StoreError(f"{self.path}: no trial {trial_id}; see what the store holds (its info)")
         columns = self._columns(rows[0][0])
         return codec.batch_from_rows(self._read(queries.MATCHED_ROLLOUTS, (int(trial_id),)), columns)
 
@@ -475,66 +289,5 @@ class Store:
             return [f"SQLite cannot read the store ({exc}); restore {self.path} from a backup "
                     f"(or copy out what `sqlite3 {self.path} .recover` saves)"]
 
-    # ---- life cycle ---------------------------------------------------------------------------
-    def close(self) -> None:
-        with self._lock:
-            self._conn.close()
-
     def __enter__(self) -> Store:
         return self
-
-    def __exit__(self, *exc) -> None:
-        self.close()
-
-    def __repr__(self) -> str:
-        return f"Store({str(self.path)!r})"
-
-
-def check_store(path: str | Path) -> tuple[list[str], list[RunRecord]]:
-    """The health check behind ``gapgauge store check``: ``(problems, unfinished runs)``.
-
-    Like :meth:`Store.check`, but a store too damaged to open at all (its first pages or its ``meta``
-    table overwritten) is a finding, not an error: when opening fails and SQLite's own integrity check
-    of the file (read-only) is not "ok", that verdict is returned as the problems. A file that is no
-    SQLite database, not a gapgauge store, newer than this gapgauge or missing still raises
-    :class:`StoreError`.
-    """
-    path = Path(path)
-    try:
-        store = Store(path, create=False)
-    except StoreError:
-        problems = _raw_integrity(path)
-        if problems:
-            return problems, []
-        raise
-    with store:
-        problems = store.check()
-        try:
-            unfinished = [r for r in store.runs() if r.status != "done"]
-        except StoreError:  # the damage already reported may hide the runs
-            unfinished = []
-    return problems, unfinished
-
-
-def _raw_integrity(path: Path) -> list[str]:
-    """SQLite's integrity verdict on a file with the SQLite header, read-only; [] when ok or not SQLite."""
-    try:
-        with open(path, "rb") as fh:
-            if fh.read(len(SQLITE_HEADER)) != SQLITE_HEADER:
-                return []
-    except OSError:
-        return []
-    restore = f"restore {path} from a backup (or copy out what `sqlite3 {path} .recover` saves)"
-    try:
-        conn = sqlite3.connect(f"{path.resolve().as_uri()}?mode=ro", uri=True, timeout=BUSY_TIMEOUT_MS / 1000)
-    except sqlite3.Error:
-        return []
-    try:
-        verdict = [row[0] for row in conn.execute("PRAGMA integrity_check").fetchall()]
-    except sqlite3.DatabaseError as exc:
-        if "locked" in str(exc).lower() or "busy" in str(exc).lower():
-            return []
-        return [f"SQLite cannot read the store ({exc}); {restore}"]
-    finally:
-        conn.close()
-    return [] if verdict == ["ok"] else [f"SQLite integrity check: {line}; {restore}" for line in verdict]

@@ -7,6 +7,7 @@ import json
 import math
 import sqlite3
 from collections.abc import Iterable, Sequence
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
@@ -14,6 +15,7 @@ import numpy as np
 
 from ..records import STATUSES, TrialRecord
 from . import schema
+from .codec import npz_to_trajectory
 
 RUNS = (
     "SELECT r.id, r.kind, r.scenario_hash, r.seed, r.design, r.planned, r.nominal, r.config_json, r.status,"
@@ -35,6 +37,24 @@ TRIALS = (
 )
 
 
+@dataclass(frozen=True)
+class RunRecord:
+    """One run: a planned set of rollouts of one scenario (kind ``sweep``, ``match``, ``standin`` or
+    ``calibration``). ``done`` counts the rollouts stored so far."""
+
+    id: int
+    kind: str
+    scenario_hash: str
+    seed: int
+    design: str
+    planned: int
+    nominal: bool
+    config: dict
+    status: str  # "running" | "done"
+    done: int
+    created_at: str
+
+
 def where(*pairs: tuple[str, Any]) -> tuple[str, list]:
     """`` WHERE a = ? AND ...`` over the pairs whose value is not None."""
     used = [(col, val) for col, val in pairs if val is not None]
@@ -43,9 +63,7 @@ def where(*pairs: tuple[str, Any]) -> tuple[str, list]:
     return " WHERE " + " AND ".join(f"{col} = ?" for col, _ in used), [val for _, val in used]
 
 
-def run_record(row: tuple):
-    from .db import RunRecord
-
+def run_record(row: tuple) -> RunRecord:
     rid, kind, scenario_hash, seed, design, planned, nominal, config, status, done, created = row
     return RunRecord(int(rid), kind, scenario_hash, int(seed), design, int(planned), bool(nominal),
                      json.loads(config), status, int(done), created)
@@ -71,7 +89,6 @@ def rollout_select(
 
 
 def trial_record(row: tuple) -> TrialRecord:
-    from .codec import npz_to_trajectory
 
     (tid, scenario_hash, source, sha, params, robot, recorded, outcome, notes, synthetic, features, objective,
      ingested, tool_version, series, extra) = row

@@ -1,6 +1,6 @@
-"""ingest(): validate hardware logs, store each trial, and give it matched simulations.
+"""Taking in hardware logs as a job: validate each, store each trial, give every trial matched simulations.
 
-For each log: :func:`gapgauge.store.logs.read_log` validates it and resamples it to SI; the balance
+For each log: :func:`gapgauge.logs.read_log` validates it and resamples it to SI; the balance
 features are computed with :func:`gapgauge.features.compute_features` on that trajectory (the same
 code as for simulated rollouts) and the objective with ``scenario.objective.evaluate``; then the trial
 is stored in one transaction with its sha256, source path, ingest time and tool version. A file
@@ -18,68 +18,27 @@ an interrupted ingest completes on the next call.
 from __future__ import annotations
 
 from collections.abc import Sequence
-from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from pathlib import Path
-from typing import Any
 
 import numpy as np
 
 from ..errors import GapgaugeError, LogError
-from ..records import TrialRecord
+from ..features import compute_features
+from ..logs import LogTrial, read_log
+from ..progress import Progress, or_silent
+from ..records import DEFAULT_MATCHES, IngestedFile, IngestSummary, TrialRecord
 from ..scenario import Scenario
+from ..sim.physics import draw_physics
+from ..sim.rollout import simulate
+from ..sim.sweep import check_model
+from ..store import Store
 from ..trajectory import MissingChannelError
-from .logs import LogTrial, read_log
+from ..version import __version__
+from .common import as_scenario, open_store
 
-DEFAULT_MATCHES = 32
 MAX_MATCHES = 4096
-
-
-@dataclass
-class IngestedFile:
-    """One log that went in (or was already in)."""
-
-    path: str
-    trial_id: int
-    sha256: str
-    created: bool
-    synthetic: bool
-    outcome: str | None
-    fell: bool
-    objective: float
-    ignored_columns: list[str] = field(default_factory=list)
-    warnings: list[str] = field(default_factory=list)
-
-
-@dataclass
-class IngestSummary:
-    """What :func:`ingest` did.
-
-    Attributes:
-        scenario_hash: the scenario version the trials belong to.
-        stored: files stored now.
-        skipped_duplicates: files whose trial was already stored (nothing changed for them).
-        failed: ``(path, one-line reason)`` of every refused file; nothing of them was stored.
-        trials: the :class:`TrialRecord` of every stored or already-stored file of this batch (with ``id``).
-        matched: trial id -> number of matched simulations linked to it (``matches`` when complete).
-        simulated: rollouts simulated by this call (0 when every match was already there).
-        matches: K asked for. seed: seed of the match runs.
-    """
-
-    scenario_hash: str
-    stored: list[IngestedFile] = field(default_factory=list)
-    skipped_duplicates: list[IngestedFile] = field(default_factory=list)
-    failed: list[tuple[str, str]] = field(default_factory=list)
-    trials: list[TrialRecord] = field(default_factory=list)
-    matched: dict[int, int] = field(default_factory=dict)
-    simulated: int = 0
-    matches: int = DEFAULT_MATCHES
-    seed: int = 0
-
-    @property
-    def ok(self) -> bool:
-        """True when no file failed."""
-        return not self.failed
+STAGE = "ingest: logs"
 
 
 def trial_record(
@@ -90,8 +49,6 @@ def trial_record(
     Raises:
         LogError: a feature the scenario asks for needs a channel the log does not map.
     """
-    from ..features import compute_features
-
     try:
         features = compute_features(log.trajectory, scenario.features, scenario.features.names)
     except MissingChannelError as exc:
@@ -124,91 +81,96 @@ def trial_record(
 
 
 def ingest(
-    scenario: Scenario,
+    scenario: Scenario | str | Path,
+    store: Store | str | Path,
     paths: Sequence[str | Path],
     *,
-    store: Any,
     matches: int = DEFAULT_MATCHES,
     seed: int = 0,
-    progress: bool = True,
+    progress: Progress | None = None,
 ) -> IngestSummary:
     """Validate and store hardware logs, then make sure each has ``matches`` matched simulations.
 
     Args:
-        scenario: the scenario the trials were run under.
-        paths: logs (CSV with sidecar JSON, or ROS 2 bags); see :mod:`gapgauge.store.logs`.
-        store: a :class:`gapgauge.store.Store`.
+        scenario: the scenario the trials were run under (a :class:`Scenario` or its path).
+        store: a :class:`gapgauge.store.Store` or the path of its file (created if missing).
+        paths: logs (CSV with sidecar JSON, or ROS 2 bags); see :mod:`gapgauge.logs`.
         matches: K, simulations per trial at its parameters (nominal physics plus K - 1 draws), >= 1.
         seed: seed of the physics draws of the match runs (stored with each run).
-        progress: show a progress bar on stderr.
+        progress: ``progress(stage, done, total)`` per log, and once more for the matched simulations.
 
     Returns:
-        :class:`IngestSummary`. Bad files are in ``failed``; this function raises only for bad arguments.
+        :class:`IngestSummary` (also stored). Bad files are in ``failed``; this function raises only for
+        bad arguments.
     """
-    from ..version import __version__
-
+    scenario = as_scenario(scenario)
+    if isinstance(paths, (str, Path)):
+        paths = [paths]
     if (
         isinstance(matches, bool)
         or not isinstance(matches, (int, np.integer))
         or not 1 <= matches <= MAX_MATCHES
     ):
-        raise GapgaugeError(f"--matches {matches!r}: give a whole number from 1 to {MAX_MATCHES}")
+        raise GapgaugeError(f"matches {matches!r}: give a whole number from 1 to {MAX_MATCHES}")
     if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or seed < 0:
-        raise GapgaugeError(f"--seed {seed!r}: give a non-negative whole number")
+        raise GapgaugeError(f"seed {seed!r}: give a non-negative whole number")
     matches, seed = int(matches), int(seed)
-    from ..sim.sweep import check_model
-
     check_model(scenario)  # matched simulations need the model: refuse a bad one before storing any trial
-    scenario_hash = store.add_scenario(scenario)
-    summary = IngestSummary(scenario_hash=scenario_hash, matches=matches, seed=seed)
-    bar = _Progress(progress, len(paths))
-    try:
-        for path in paths:
-            bar.step(f"reading {Path(path).name}")
-            try:
-                log = read_log(scenario, path)
-                now = datetime.now(timezone.utc).isoformat(timespec="seconds")
-                record = trial_record(scenario, log, ingested_at=now, tool_version=__version__)
-                record.scenario_hash = scenario_hash
-            except GapgaugeError as exc:
-                summary.failed.append((str(path), str(exc)))
-                continue
-            trial_id, created = store.add_trial(record)
-            record.id = trial_id
-            fell = bool(record.features.get("fell", 0.0) == 1.0)
-            warnings = list(log.warnings)
-            if log.outcome is not None and (log.outcome == "fell") != fell:
-                warnings.append(
-                    f"{path}: the operator's outcome is {log.outcome!r} but the features say "
-                    f"{'fell' if fell else 'stood'}; check the fall thresholds in [features]"
-                )
-            item = IngestedFile(
-                str(path),
-                trial_id,
-                log.sha256,
-                created,
-                log.synthetic,
-                log.outcome,
-                fell,
-                record.objective,
-                list(log.ignored_columns),
-                warnings,
-            )
-            (summary.stored if created else summary.skipped_duplicates).append(item)
-            if all(t.id != trial_id for t in summary.trials):
-                summary.trials.append(record)
-        bar.step("simulating matches")
-        _match(scenario, store, summary)
-    finally:
-        bar.close()
+    report = or_silent(progress)
+    with open_store(store, must_exist=False) as db:
+        summary = _take_in(scenario, db, paths, matches, seed, report)
+        report(STAGE, len(paths), len(paths) + 1)
+        _match(scenario, db, summary)
+        report(STAGE, len(paths) + 1, len(paths) + 1)
+        db.save_result(summary.scenario_hash, summary)
     return summary
 
 
-def _match(scenario: Scenario, store: Any, summary: IngestSummary) -> None:
-    """Simulate every missing match of the batch's trials in one call, then store and link per trial."""
-    from ..sim.physics import draw_physics
-    from ..sim.rollout import simulate
+def _take_in(
+    scenario: Scenario, store: Store, paths: Sequence[str | Path], matches: int, seed: int, report: Progress
+) -> IngestSummary:
+    """Read, check and store each log; a bad file is listed in ``failed`` and nothing of it is stored."""
+    scenario_hash = store.add_scenario(scenario)
+    summary = IngestSummary(scenario_hash=scenario_hash, matches=matches, seed=seed)
+    for done, path in enumerate(paths):
+        report(STAGE, done, len(paths) + 1)
+        try:
+            log = read_log(scenario, path)
+            now = datetime.now(timezone.utc).isoformat(timespec="seconds")
+            record = trial_record(scenario, log, ingested_at=now, tool_version=__version__)
+            record.scenario_hash = scenario_hash
+        except GapgaugeError as exc:
+            summary.failed.append((str(path), str(exc)))
+            continue
+        trial_id, created = store.add_trial(record)
+        record.id = trial_id
+        fell = bool(record.features.get("fell", 0.0) == 1.0)
+        warnings = list(log.warnings)
+        if log.outcome is not None and (log.outcome == "fell") != fell:
+            warnings.append(
+                f"{path}: the operator's outcome is {log.outcome!r} but the features say "
+                f"{'fell' if fell else 'stood'}; check the fall thresholds in [features]"
+            )
+        item = IngestedFile(
+            str(path),
+            trial_id,
+            log.sha256,
+            created,
+            log.synthetic,
+            log.outcome,
+            fell,
+            record.objective,
+            list(log.ignored_columns),
+            warnings,
+        )
+        (summary.stored if created else summary.skipped_duplicates).append(item)
+        if all(t.id != trial_id for t in summary.trials):
+            summary.trials.append(record)
+    return summary
 
+
+def _match(scenario: Scenario, store: Store, summary: IngestSummary) -> None:
+    """Simulate every missing match of the batch's trials in one call, then store and link per trial."""
     k, seed = summary.matches, summary.seed
     nominal = draw_physics(scenario, seed, np.array([0]), nominal=True)
     drawn = draw_physics(scenario, seed, np.arange(1, k)) if k > 1 else np.empty((0, len(scenario.physics)))
@@ -254,25 +216,3 @@ def _match(scenario: Scenario, store: Any, summary: IngestSummary) -> None:
         store.finish_run(run_id)
         store.link_matches(trial.id, run_id, list(range(k)))
         summary.matched[trial.id] = k
-
-
-class _Progress:
-    """A rich progress bar on stderr, or nothing."""
-
-    def __init__(self, enabled: bool, total: int):
-        self.bar = None
-        if enabled and total:
-            from rich.console import Console
-            from rich.progress import Progress
-
-            self.bar = Progress(console=Console(stderr=True), transient=True)
-            self.bar.start()
-            self.task = self.bar.add_task("ingest", total=total + 1)
-
-    def step(self, text: str) -> None:
-        if self.bar is not None:
-            self.bar.update(self.task, advance=1, description=text)
-
-    def close(self) -> None:
-        if self.bar is not None:
-            self.bar.stop()

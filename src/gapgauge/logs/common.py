@@ -1,59 +1,38 @@
-"""Hardware log readers: CSV + sidecar JSON (and ROS 2 bags / MCAP via :mod:`gapgauge.store.bag`).
+"""What every hardware log reader shares: the trial record, the sidecar, the sample checks, resampling.
 
-The hardware log contract (DESIGN.md section 4, DEVELOPERS.md "Hardware log"): one CSV per trial with
-a header row, the time column and one column per mapped channel, units as the scenario's
-``[hardware.time]`` and ``[hardware.columns]`` declare them; beside it a sidecar JSON with the same
-stem (``trial_003.csv`` + ``trial_003.json``)::
-
-    {"params": {name: value}, "robot_id": str, "recorded_at": ISO-8601,
-     "outcome": "stood" | "fell" | null, "notes": str, "synthetic": bool}
-
-Log time is seconds since the start of the trial, on the scenario's clock: the disturbance begins at
-``scenario.task.onset``. :func:`read_log` converts every column to SI with the exact factors of
-:mod:`gapgauge.units`, checks the samples (finite, time strictly increasing, no gap longer than
-``max_gap_s``, not slower than ``min_rate_hz``, inside plausible ranges and the model's joint limits),
-resamples every channel by linear interpolation onto a common time base ``k / sample_rate_hz`` over the
-logged span, and low-passes it when ``[hardware].lowpass_hz`` is set (Butterworth, zero phase). Anything
-wrong is refused with a one-line :class:`LogError` naming the file, line and column, what is wrong and
-the fix. The file is streamed: its size is checked before it is opened, and lines are decoded one at a
-time.
+A reader (:mod:`gapgauge.logs.csv`, :mod:`gapgauge.logs.bag`) turns its file into one or more
+:class:`Stream` objects in SI and hands them with the :class:`Sidecar` to :func:`build_trial`, which
+checks the samples (finite, time strictly increasing, no gap longer than ``max_gap_s``, not slower
+than ``min_rate_hz``, inside plausible ranges and the compiled model's joint limits), resamples every
+channel by linear interpolation onto ``k / sample_rate_hz`` over the logged span and low-passes it
+when ``[hardware].lowpass_hz`` is set. The contract itself is described in :mod:`gapgauge.logs`.
 """
 
 from __future__ import annotations
 
-import codecs
-import csv
-import hashlib
 import json
 import math
-import xml.etree.ElementTree as ET
-from collections.abc import Callable, Iterator
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from datetime import datetime
 from pathlib import Path
-from typing import Any, BinaryIO
+from typing import Any
 
 import numpy as np
 
 from ..errors import GapgaugeError, LogError, where
 from ..observe import lowpass
 from ..scenario import Scenario
+from ..scenario.model_info import joint_ranges
 from ..trajectory import CHANNELS, JOINTS, Trajectory
-from ..units import UNITS, factor
+from ..units import UNITS
 
-#: largest single line of a CSV log, bytes (a log line is a few hundred bytes; more is not a log)
-MAX_LINE_BYTES = 1 << 20
 #: largest sidecar JSON, bytes
 MAX_SIDECAR_BYTES = 1 << 20
-#: numbers converted per block while streaming, rows
-BLOCK_ROWS = 8192
 #: slack beyond the model's joint range before an angle counts as impossible, rad (soft limits give a little)
 JOINT_LIMIT_SLACK = 0.1
-#: Butterworth order of the optional low-pass (sosfiltfilt doubles it: zero phase, order 8 magnitude)
 OUTCOMES = ("stood", "fell")
 SIDECAR_KEYS = ("params", "robot_id", "recorded_at", "outcome", "notes", "synthetic")
-BAG_SUFFIXES = (".mcap", ".db3")
-
 
 @dataclass
 class LogTrial:
@@ -126,50 +105,7 @@ class Stream:
     locate_cell: Callable[[int, str], str]
 
 
-# ---- entry point ---------------------------------------------------------------------------------
-
-
-def read_log(scenario: Scenario, path: str | Path) -> LogTrial:
-    """Read, validate and resample one hardware log and its sidecar.
-
-    Args:
-        scenario: the scenario whose ``[hardware]`` table maps the log's columns.
-        path: a ``.csv`` log, or a ROS 2 bag (folder, ``.mcap`` or ``.db3`` file; needs the ``rosbag``
-            extra). The sidecar JSON has the same stem beside it.
-
-    Returns:
-        :class:`LogTrial` with the trajectory in SI on ``t = k / sample_rate_hz`` over the logged span.
-
-    Raises:
-        LogError: one line naming the file (and line and column), what is wrong and the fix.
-    """
-    path = Path(path)
-    try:
-        return _read_log(scenario, path)
-    except OSError as exc:  # permissions, a vanished file, a device: the user's to fix
-        raise LogError(
-            f"{path}: cannot be read ({exc.strerror or exc}); check the file and its permissions"
-        ) from None
-
-
-def _read_log(scenario: Scenario, path: Path) -> LogTrial:
-    if not path.exists():
-        raise LogError(f"{path}: file not found; check the path")
-    if path.is_dir() or path.suffix.lower() in BAG_SUFFIXES:
-        from .bag import read_bag
-
-        return read_bag(scenario, path)
-    if path.suffix.lower() != ".csv":
-        raise LogError(f"{path}: not a .csv log; give a CSV log, a ROS 2 bag folder or an .mcap / .db3 file")
-    if not path.is_file():
-        raise LogError(f"{path}: is not a regular file; give a CSV log")
-    check_size(path, path.stat().st_size, scenario)
-    sidecar = read_sidecar(scenario, sidecar_path_for(path))
-    hasher = hashlib.sha256()
-    stream, ignored = read_csv_stream(scenario, path, hasher)
-    hasher.update(b"\n--sidecar--\n")
-    hasher.update(sidecar.raw)
-    return build_trial(scenario, path, [stream], sidecar, hasher.hexdigest(), ignored)
+# ---- file size and sidecar location -----------------------------------------------------------
 
 
 def sidecar_path_for(path: Path) -> Path:
@@ -265,14 +201,14 @@ def read_sidecar(scenario: Scenario, path: Path) -> Sidecar:
     if not isinstance(robot_id, str) or not robot_id.strip() or len(robot_id) > 200:
         raise fail(
             "robot_id",
-            f"must be a non-empty string of at most 200 characters, got {_short(robot_id)}",
+            f"must be a non-empty string of at most 200 characters, got {short_repr(robot_id)}",
             'name the robot, e.g. "robot_id": "biped-02"',
         )
     recorded_at = data.get("recorded_at")
     if not isinstance(recorded_at, str) or len(recorded_at) > 64:
         raise fail(
             "recorded_at",
-            f"must be an ISO-8601 string, got {_short(recorded_at)}",
+            f"must be an ISO-8601 string, got {short_repr(recorded_at)}",
             'e.g. "recorded_at": "2024-05-01T10:32:00+02:00"',
         )
     try:
@@ -280,181 +216,30 @@ def read_sidecar(scenario: Scenario, path: Path) -> Sidecar:
     except ValueError:
         raise fail(
             "recorded_at",
-            f"{_short(recorded_at)} is not an ISO-8601 date and time",
+            f"{short_repr(recorded_at)} is not an ISO-8601 date and time",
             'e.g. "recorded_at": "2024-05-01T10:32:00+02:00"',
         ) from None
     outcome = data.get("outcome")
     if outcome is not None and outcome not in OUTCOMES:
-        raise fail("outcome", f'must be "stood", "fell" or null, got {_short(outcome)}', "use one of those")
+        raise fail("outcome", f'must be "stood", "fell" or null, got {short_repr(outcome)}', "use one of those")
     notes = data.get("notes", "")
     if notes is None:
         notes = ""
     if not isinstance(notes, str) or len(notes) > 10_000:
         raise fail(
             "notes",
-            f"must be a string of at most 10000 characters, got {_short(notes)}",
+            f"must be a string of at most 10000 characters, got {short_repr(notes)}",
             "write the notes as text",
         )
     synthetic = data.get("synthetic", False)
     if not isinstance(synthetic, bool):
-        raise fail("synthetic", f"must be true or false, got {_short(synthetic)}", "use a JSON boolean")
+        raise fail("synthetic", f"must be true or false, got {short_repr(synthetic)}", "use a JSON boolean")
     extra = [k for k in data if k not in SIDECAR_KEYS]
     if extra:
         warnings.append(
             f"{path}: sidecar key(s) {', '.join(map(repr, extra[:5]))} not in the contract, ignored"
         )
     return Sidecar(path, values, robot_id, recorded_at, outcome, notes, synthetic, raw, warnings)
-
-
-# ---- the CSV ---------------------------------------------------------------------------------
-
-
-def _decoded_lines(fh: BinaryIO, path: Path, hasher: Any) -> Iterator[str]:
-    """Yield the file's lines as text, one at a time, refusing NUL bytes, bad UTF-8 and overlong lines."""
-    lineno = 0
-    decoder = codecs.getincrementaldecoder("utf-8")()
-    while True:
-        raw = fh.readline(MAX_LINE_BYTES + 1)
-        if not raw:
-            return
-        lineno += 1
-        hasher.update(raw)
-        if len(raw) > MAX_LINE_BYTES:
-            raise LogError(
-                f"{where(path, lineno)}: line is longer than {MAX_LINE_BYTES} bytes; this is not a log CSV"
-            )
-        nul = raw.find(b"\x00")
-        if nul >= 0:
-            raise LogError(
-                f"{where(path, lineno, nul + 1)}: NUL byte: binary data, not CSV text; "
-                "give the CSV export of the log"
-            )
-        try:
-            text = decoder.decode(raw, final=True)
-        except UnicodeDecodeError as exc:
-            raise LogError(
-                f"{where(path, lineno, exc.start + 1)}: not UTF-8 text; export the log as UTF-8 CSV"
-            ) from None
-        if lineno == 1:
-            text = text.lstrip("\ufeff")
-        yield text
-
-
-def read_csv_stream(scenario: Scenario, path: Path, hasher: Any) -> tuple[Stream, list[str]]:
-    """Stream a CSV log into a :class:`Stream` in SI; return it and the ignored (unmapped) columns.
-
-    ``hasher`` (a ``hashlib`` object) is fed every raw byte read, so the file is read once.
-    """
-    hw = scenario.hardware
-    with path.open("rb") as fh:
-        reader = csv.reader(_decoded_lines(fh, path, hasher), strict=True)
-        try:
-            header = next(reader, None)
-            if header is None or not any(h.strip() for h in header):
-                raise LogError(
-                    f"{where(path, 1)}: no header row; the first line names the columns "
-                    f"({hw.time_column}, {', '.join(c.column for c in hw.columns[:3])}, ...)"
-                )
-            names = [h.strip() for h in header]
-            seen: dict[str, int] = {}
-            for i, name in enumerate(names):
-                if name in seen:
-                    raise LogError(
-                        f"{where(path, 1, i + 1)}: column {name!r} appears twice in the header; "
-                        "give each column one name"
-                    )
-                seen[name] = i
-            wanted = [(hw.time_column, "time")] + [(c.column, c.channel) for c in hw.columns]
-            missing = [(col, ch) for col, ch in wanted if col not in seen]
-            if missing:
-                what = ", ".join(f"{col!r} ({ch})" for col, ch in missing[:6])
-                more = f" and {len(missing) - 6} more" if len(missing) > 6 else ""
-                raise LogError(
-                    f"{where(path, 1)}: missing column(s) {what}{more} that the scenario maps; "
-                    "add them or fix [hardware.columns] / [hardware.time] in the scenario"
-                )
-            ignored = [n for n in names if n not in {col for col, _ in wanted}]
-            index = np.array([seen[col] for col, _ in wanted])
-            ncols = len(names)
-            blocks: list[np.ndarray] = []
-            line_blocks: list[np.ndarray] = []
-            rows: list[list[float]] = []
-            lines: list[int] = []
-            pending: tuple[int, int] | None = None  # a ragged row seen: (line, fields)
-            for row in reader:
-                if pending is not None:
-                    raise LogError(
-                        f"{where(path, pending[0])}: row has {pending[1]} fields, the header has {ncols}; "
-                        "give every row one value per column"
-                    )
-                if not row:
-                    continue
-                line = reader.line_num
-                if len(row) != ncols:
-                    pending = (line, len(row))
-                    continue
-                values = []
-                for k, (col, _channel) in zip(index, wanted, strict=True):
-                    values.append(_number(row[k], path, line, int(k) + 1, col))
-                rows.append(values)
-                lines.append(line)
-                if len(rows) >= BLOCK_ROWS:
-                    blocks.append(np.array(rows, dtype=float))
-                    line_blocks.append(np.array(lines, dtype=np.int64))
-                    rows, lines = [], []
-            if pending is not None:
-                raise LogError(
-                    f"{where(path, pending[0])}: truncated last row ({pending[1]} of {ncols} fields); "
-                    "the log was cut off: copy it again from the robot or delete the partial row"
-                )
-        except csv.Error as exc:
-            raise LogError(
-                f"{where(path, reader.line_num)}: not readable as CSV ({exc}); "
-                "check quoting and line endings there"
-            ) from None
-    if rows:
-        blocks.append(np.array(rows, dtype=float))
-        line_blocks.append(np.array(lines, dtype=np.int64))
-    if not blocks:
-        raise LogError(f"{path}: header only, no data rows; give the trial's samples below the header")
-    data = np.concatenate(blocks)
-    line_of = np.concatenate(line_blocks)
-    tfac = factor(hw.time_unit, "time")
-    values = {
-        c.channel: data[:, j + 1] * factor(c.unit, CHANNELS[c.channel][0]) for j, c in enumerate(hw.columns)
-    }
-    col_of = {c.channel: seen[c.column] + 1 for c in hw.columns}
-    col_of["time"] = seen[hw.time_column] + 1
-    stream = Stream(
-        t=data[:, 0] * tfac,
-        values=values,
-        units={c.channel: c.unit for c in hw.columns} | {"time": hw.time_unit},
-        labels={c.channel: c.column for c in hw.columns} | {"time": hw.time_column},
-        locate=lambda i: where(path, int(line_of[i])),
-        locate_cell=lambda i, ch: f"{where(path, int(line_of[i]), col_of[ch])}",
-    )
-    return stream, ignored
-
-
-def _number(cell: str, path: Path, line: int, column: int, name: str) -> float:
-    text = cell.strip()
-    if not text:
-        raise LogError(
-            f"{where(path, line, column)}: empty cell in column {name!r}; every sample needs a number"
-        )
-    try:
-        value = float(text)
-    except ValueError:
-        raise LogError(
-            f"{where(path, line, column)}: {_short(text)} in column {name!r} is not a number; "
-            "write plain decimal numbers (e.g. 12.5)"
-        ) from None
-    if not math.isfinite(value):
-        raise LogError(
-            f"{where(path, line, column)}: {text} in column {name!r} is not a finite number; "
-            "remove or repair samples with NaN or inf (a sensor dropout?)"
-        )
-    return value
 
 
 # ---- checks, resampling, filtering ------------------------------------------------------------------
@@ -635,26 +420,21 @@ def _unit_hint(channel: str, unit: str, raw: np.ndarray, low: float, high: float
 def plausible_limits(scenario: Scenario) -> dict[str, tuple[float, float, str]]:
     """Channel -> (low, high, what) in SI: ``[hardware.plausible]`` intersected with the model's joint ranges.
 
-    Joint ranges (MJCF ``range`` of the hinge joints ``ankle``, ``knee``, ``hip``) get
+    Joint ranges are those of the compiled model (:func:`gapgauge.scenario.model_info.joint_ranges`,
+    radians whatever ``<compiler angle>`` says) for the hinges ``ankle``, ``knee``, ``hip``, widened by
     :data:`JOINT_LIMIT_SLACK` rad on each side, as contact with a soft limit can pass it slightly.
+
+    Raises:
+        ScenarioError: the model does not compile.
     """
     out: dict[str, tuple[float, float, str]] = {
         ch: (lo, hi, "the plausible range") for ch, (lo, hi) in scenario.hardware.plausible.items()
     }
-    try:
-        root = ET.parse(scenario.model_path).getroot()
-    except (ET.ParseError, OSError):  # the scenario loader already checked the model; be lenient here
-        return out
-    for joint in root.iter("joint"):
-        name = joint.get("name")
-        rng = joint.get("range")
-        if name not in JOINTS or not rng:
+    ranges = joint_ranges(scenario)
+    for name in JOINTS:
+        if name not in ranges:
             continue
-        try:
-            lo, hi = (float(v) for v in rng.split())
-        except ValueError:
-            continue
-        lo, hi = lo - JOINT_LIMIT_SLACK, hi + JOINT_LIMIT_SLACK
+        lo, hi = ranges[name][0] - JOINT_LIMIT_SLACK, ranges[name][1] + JOINT_LIMIT_SLACK
         channel = f"{name}_angle"
         if channel in out:
             plo, phi, _ = out[channel]
@@ -671,6 +451,6 @@ def _line_col(raw: bytes, offset: int) -> tuple[int, int]:
     return line, offset - (before.rfind(b"\n") + 1) + 1
 
 
-def _short(value: Any) -> str:
+def short_repr(value: Any) -> str:
     text = repr(value)
     return text if len(text) <= 40 else text[:37] + "..."

@@ -28,7 +28,7 @@ from ..errors import LogError
 from ..scenario import BagChannel, Scenario
 from ..trajectory import CHANNELS
 from ..units import factor
-from .logs import LogTrial, Stream, build_trial, check_size, read_sidecar, sidecar_path_for
+from .common import LogTrial, Stream, build_trial, check_size, read_sidecar, sidecar_path_for
 
 _FIELD = re.compile(r"^[A-Za-z_][A-Za-z0-9_]*(\[\d+\])?(\.[A-Za-z_][A-Za-z0-9_]*(\[\d+\])?)*$")
 _TOKEN = re.compile(r"([A-Za-z_][A-Za-z0-9_]*)|\[(\d+)\]")
@@ -76,10 +76,11 @@ def read_bag(scenario: Scenario, path: str | Path) -> LogTrial:
 
     Raises:
         LogError: rosbags not installed, no ``[hardware.bag]`` in the scenario, a topic or field missing,
-            an unreadable bag, or any of the sample checks of :func:`gapgauge.store.logs.read_log`.
+            an unreadable bag, or any of the sample checks of :func:`gapgauge.logs.read_log`.
     """
     path = Path(path)
     try:
+        # deferred: rosbags is the optional ``rosbag`` extra, needed only when a bag is read
         from rosbags.highlevel import AnyReader
         from rosbags.typesys import Stores, get_typestore
     except ImportError:
@@ -153,9 +154,7 @@ def read_bag(scenario: Scenario, path: str | Path) -> LogTrial:
                         ) from None
     except LogError:
         raise
-    except (
-        Exception
-    ) as exc:  # rosbags raises many types for a damaged or foreign file; all mean the same here
+    except Exception as exc:  # rosbags raises many types for a damaged or foreign file; all mean the same here
         raise LogError(
             f"{path}: not a readable ROS 2 bag ({type(exc).__name__}: {_first_line(exc)}); "
             "check the file was copied completely, or export the log as CSV"

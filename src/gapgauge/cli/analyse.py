@@ -1,0 +1,275 @@
+"""Commands that analyse what the store holds: shift, prior, propose, budget, calibrate."""
+
+from __future__ import annotations
+
+import click
+from rich.markup import escape
+from rich.table import Table
+
+from ..app.budget import plan_budget
+from ..app.calibrate import calibrate
+from ..app.prior import fit_prior
+from ..app.propose import propose
+from ..app.shift import assess_shift
+from ..compare.budget import book_text
+from ..safety import CAUTION
+from ..scenario import load_scenario
+from .common import console, json_option, num, pair, print_notes, progress_bars, store_option
+
+
+@click.command("shift")
+@click.argument("scenario", type=click.Path(dir_okay=False))
+@store_option
+@json_option
+@click.option("--plots", "plots_dir", default=None, type=click.Path(file_okay=False),
+              help="Save a PNG per feature (simulated spread with the hardware values; residuals) here.")
+@click.option("--seed", default=0, show_default=True, type=click.IntRange(0),
+              help="Seed of the bootstraps and permutations.")
+@click.option("--level", default=None, type=click.FloatRange(0.0, 0.5, min_open=True, max_open=True),
+              help="Significance level; overrides the scenario's [shift] level.")
+def shift_command(scenario: str, store_path: str, json_path: str | None, plots_dir: str | None, seed: int,
+                  level: float | None) -> None:
+    """Does simulation carry over? Per-feature verdicts and joint tests on the matched hardware trials."""
+
+    sc = load_scenario(scenario)
+    report = assess_shift(sc, store_path, seed=seed, level=level, json_path=json_path, plots_dir=plots_dir)
+    s = report.settings
+
+    colours = {"carries_over": "green", "offset_order_kept": "yellow", "does_not_carry_over": "red",
+               "undecided": "white"}
+    title = f"shift: {escape(sc.name)}, {len(report.trial_ids)} trial(s)"
+    table = Table(title=title, title_justify="left")
+    for column in ("feature", "verdict", "n", "bias (sd)", f"{1 - s['level']:.0%} bias interval",
+                   "max |resid|", "Wasserstein (sd)", "KS", "Kendall tau"):
+        table.add_column(column, overflow="fold")
+    for f in report.features:
+        tau = f.rank.kendall if f.rank is not None else None
+        table.add_row(
+            escape(f.name), f"[{colours[f.verdict]}]{f.verdict}[/]", str(f.n_trials),
+            num(f.bias_sd_units, "+.2f"),
+            pair(f.bias_test_interval), num(f.max_abs_residual, ".2f"), num(f.wasserstein_sd_units, ".2f"),
+            num(f.ks_statistic, ".2f"), num(tau, ".2f"),
+        )
+    console.print(table)
+    for f in report.features:
+        console.print(f"[{colours[f.verdict]}]{escape(f.name)}[/]: {escape(f.reason)}")
+    j = report.joint
+    console.print(
+        f"joint ({len(j['features'])} features): MMD^2 {num(j['mmd2'])} (p = {num(j['mmd_p_value'], '.3f')}, "
+        f"{j['mmd_permutations']} permutations); classifier AUC {num(j['classifier_auc'], '.2f')} "
+        f"{pair(j['classifier_auc_interval'])} (p = {num(j['classifier_p_value'], '.3f')})"
+    )
+    if report.objective is not None:
+        o = report.objective
+        console.print(
+            f"objective: Kendall tau {num(o.rank.kendall, '.2f')} "
+            f"(p = {num(o.rank.kendall_p_value, '.3f')}); "
+            f"hardware = {num(o.link.intercept)} {pair(o.link.intercept_interval)} + "
+            f"{num(o.link.slope)} {pair(o.link.slope_interval)} x simulation"
+        )
+    console.print(
+        f"level {s['level']:g}; carries over: {1 - 2 * s['level']:.0%} bias interval inside "
+        f"+-{s['offset_limit']:g} sd and residuals beyond {s['residual_limit']:g} "
+        "no more often than in simulation; "
+        f"order kept: Kendall tau >= {s['rank_threshold']:g} with p < level; seed {report.seed}"
+    )
+    print_notes(report.notes)
+    if json_path:
+        console.print(f"JSON: {escape(json_path)}")
+    for path in report.plots:
+        console.print(f"plot: {escape(path)}")
+
+
+
+
+@click.command("prior")
+@click.argument("scenario", type=click.Path(dir_okay=False))
+@store_option
+@json_option
+@click.option("--seed", default=0, show_default=True, type=click.IntRange(0),
+              help="Seed of the subsample, inducing points and optimiser restarts.")
+@click.option("--max-inducing", default=300, show_default=True, type=click.IntRange(10, 5000),
+              help="Inducing points of the simulation level (sparse GP above 2,000 rollouts).")
+def prior_command(scenario: str, store_path: str, json_path: str | None, seed: int, max_inducing: int) -> None:
+    """Fit and store the multi-fidelity prior (simulation corrected by hardware) and the fall model."""
+
+    sc = load_scenario(scenario)
+    with progress_bars() as progress:
+        fit = fit_prior(sc, store_path, seed=seed, max_inducing=max_inducing, progress=progress)
+
+    low, high = fit.rho_interval
+    console.print(f"prior: {escape(sc.name)}: {fit.n_sim} simulated rollouts, {fit.n_hardware} hardware trial(s)")
+    console.print(f"rho = {num(fit.rho)}  95% interval [{num(low)}, {num(high)}]  (hardware = rho x simulation "
+                  "+ discrepancy)")
+    console.print(f"discrepancy scale {num(fit.discrepancy_scale)} (objective units); "
+                  f"offset {num(fit.objective_model.offset_, '+.3g')}; "
+                  f"hardware noise sd {num(fit.objective_model.hardware_noise_sd_)}")
+    table = Table(title=f"leave-one-out over {fit.n_hardware} hardware trial(s)", title_justify="left")
+    for column in ("model", "RMSE (objective units)", "mean log predictive density"):
+        table.add_column(column)
+    names = {"multi_fidelity": "multi-fidelity prior", "hardware_only": "hardware only",
+             "simulation_only": "simulation only"}
+    for key, label in names.items():
+        row = fit.loo[key]
+        table.add_row(label, num(row["rmse"]), num(row["log_predictive_density"], ".3f"))
+    console.print(table)
+    console.print(f"fit time {fit.fit_seconds:.1f} s; simulation level "
+                  f"{type(fit.objective_model.low_).__name__}; stored as model {fit.model_id}; seed {fit.seed}")
+    print_notes(fit.notes)
+    if json_path:
+        fit.write_json(json_path)
+        console.print(f"JSON: {escape(json_path)}")
+
+
+@click.command("propose")
+@click.argument("scenario", type=click.Path(dir_okay=False))
+@store_option
+@click.option("--count", default=1, show_default=True, type=click.IntRange(1, 50),
+              help="Number of trials to propose (a batch by kriging believer).")
+@click.option("--max-fall-risk", default=0.05, show_default=True,
+              type=click.FloatRange(0.0, 1.0, min_open=True), help="Highest modelled fall probability allowed.")
+@click.option("--out", "out_path", default=None, type=click.Path(dir_okay=False),
+              help='Write {"proposals": [...]} JSON here (gapgauge standin --params reads it).')
+@click.option("--seed", default=0, show_default=True, type=click.IntRange(0),
+              help="Seed of the candidate sets (and of a refit, if the stored prior is out of date).")
+def propose_command(scenario: str, store_path: str, count: int, max_fall_risk: float, out_path: str | None,
+                    seed: int) -> None:
+    """Propose the next hardware trials: expected improvement x P(no fall), inside the safe bounds."""
+
+    sc = load_scenario(scenario)
+    with progress_bars() as progress:
+        result = propose(sc, store_path, count=count, max_fall_risk=max_fall_risk, seed=seed, progress=progress)
+    table = Table(title=f"proposals: {escape(sc.name)} (P(fall) <= {max_fall_risk:g})", title_justify="left")
+    table.add_column("parameter")
+    table.add_column("unit")
+    for i in range(len(result.proposals)):
+        table.add_column(f"#{i + 1}", justify="right")
+    for name in sc.parameter_names:
+        table.add_row(escape(name), escape(result.units[name]),
+                      *[f"{p['params'][name]:.4g}" for p in result.proposals])
+    table.add_row("predicted objective", "", *[f"{p['predicted_objective']:.4g}" for p in result.proposals])
+    table.add_row("predicted sd", "", *[f"{p['predicted_sd']:.3g}" for p in result.proposals])
+    table.add_row("P(fall)", "", *[f"{p['fall_risk']:.3f}" for p in result.proposals])
+    console.print(table)
+    for i, p in enumerate(result.proposals):
+        console.print(f"#{i + 1}: {escape(p['reason'])}")
+    console.print(f"batch: {escape(result.batch_method)}; incumbent {result.incumbent:.4g}; "
+                  f"{result.n_hardware} hardware trial(s), {result.n_sim} simulated rollouts; seed {result.seed}")
+    print_notes(result.notes)
+    if out_path:
+        result.write_json(out_path)
+        console.print(f"JSON: {escape(out_path)}")
+    console.print(f"[bold yellow]{CAUTION}[/]")
+
+
+
+
+@click.command("budget")
+@click.argument("scenario", type=click.Path(dir_okay=False))
+@store_option
+@click.option("--target", "target_fraction", default=0.95, show_default=True,
+              type=click.FloatRange(0.0, 1.0, min_open=True),
+              help="Target: this fraction of the way from a random safe parameter set (median) to the best.")
+@click.option("--target-value", default=None, type=float,
+              help="Target: this objective value instead (objective units, lower is better).")
+@click.option("--confidence", default=0.8, show_default=True, type=click.FloatRange(0.0, 1.0, min_open=True,
+              max_open=True), help="Probability of reaching the target within the booked trials.")
+@click.option("--max-trials", default=20, show_default=True, type=click.IntRange(1, 500),
+              help="Trials per simulated tuning run.")
+@click.option("--draws", default=128, show_default=True, type=click.IntRange(1, 100_000),
+              help="Plausible hardware response surfaces drawn from the posterior.")
+@click.option("--max-fall-risk", default=0.05, show_default=True,
+              type=click.FloatRange(0.0, 1.0, min_open=True), help="Fall-risk limit of the policy (as propose).")
+@click.option("--seed", default=0, show_default=True, type=click.IntRange(0),
+              help="Seed of the candidates, the draws and the observation noise.")
+@json_option
+def budget_command(scenario: str, store_path: str, target_fraction: float, target_value: float | None,
+                   confidence: float, max_trials: int, draws: int, max_fall_risk: float, seed: int,
+                   json_path: str | None) -> None:
+    """How many hardware trials to book: Monte Carlo of the propose policy, with and without the prior."""
+
+    sc = load_scenario(scenario)
+    with progress_bars() as progress:
+        plan = plan_budget(sc, store_path, target_fraction=target_fraction, target_value=target_value,
+                           confidence=confidence, max_trials=max_trials, draws=draws, seed=seed,
+                           max_fall_risk=max_fall_risk, progress=progress)
+    level = f"P{round(100 * confidence)}"
+    table = Table(title=f"budget: {escape(sc.name)}, trials to reach the target ({plan.draws} draws, "
+                  f"up to {plan.max_trials} trials)", title_justify="left")
+    keys = ["p50", "p80", "p95"] + ([] if level in ("P50", "P80", "P95") else ["book"])
+    for column in ("", "P50", "P80", "P95", level)[: len(keys) + 1] + ("reached", "expected falls"):
+        table.add_column(column, justify="right")
+    for label, arm in (("with the simulation prior", plan.with_prior), ("cold start (no prior)", plan.cold_start)):
+        table.add_row(label, *[book_text(arm[k], plan.max_trials) for k in keys],
+                      f"{100 * arm['reached_fraction']:.0f}%", f"{arm['expected_falls']:.2f}")
+    console.print(table)
+    if plan.saving is not None:
+        console.print(f"saving (cold P80 - prior P80): {plan.saving} trial(s)")
+    elif plan.saving_at_least is not None:
+        console.print(f"saving (cold P80 - prior P80): at least {plan.saving_at_least} trial(s)")
+    marks = sorted({n for n in (1, 2, 3, 5, 8, 10, 15, 20, 30, 50, plan.max_trials) if n <= plan.max_trials})
+    curve = Table(title="P(target reached by trial n)", title_justify="left")
+    curve.add_column("n", justify="right")
+    for n in marks:
+        curve.add_column(str(n), justify="right")
+    for key, label in (("with_prior", "with prior"), ("cold_start", "cold start")):
+        curve.add_row(label, *[f"{plan.curve[n - 1][key]:.2f}" for n in marks])
+    console.print(curve)
+    console.print(f"target: {escape(plan.target['definition'])}; fall-risk limit {plan.max_fall_risk:g}; "
+                  f"{plan.n_hardware} hardware trial(s) known; seed {plan.seed}; {plan.seconds:.1f} s")
+    print_notes(plan.notes)
+    console.print(f"[bold]{escape(plan.sentence)}[/]")
+    if json_path:
+        plan.write_json(json_path)
+        console.print(f"JSON: {escape(json_path)}")
+
+
+@click.command("calibrate")
+@click.argument("scenario", type=click.Path(dir_okay=False))
+@store_option
+@click.option("--physics", "physics", default=None,
+              help="Comma-separated physical quantities to fit (default: the scenario's [calibration] physics).")
+@click.option("--overlay", "overlay_path", default=None, type=click.Path(dir_okay=False),
+              help="Where to write the calibrated scenario overlay (default: <scenario>.calibrated.toml beside it).")
+@json_option
+@click.option("--seed", default=0, show_default=True, type=click.IntRange(0),
+              help="Seed of the spread draws and the optimiser.")
+def calibrate_command(scenario: str, store_path: str, physics: str | None, overlay_path: str | None,
+                      json_path: str | None, seed: int) -> None:
+    """Fit the simulator's physics to the hardware trials; write a calibrated scenario overlay."""
+
+    sc = load_scenario(scenario)
+    names = None if physics is None else [n.strip() for n in physics.split(",") if n.strip()]
+    with progress_bars() as progress:
+        result = calibrate(sc, store_path, physics_names=names, overlay_path=overlay_path, seed=seed,
+                           json_path=json_path, progress=progress)
+    table = Table(title=f"calibrate: {escape(sc.name)}, {result.n_trials} trial(s)", title_justify="left")
+    for column in ("physics", "estimate", "95% interval", "was", "identifiable", "why"):
+        table.add_column(column, overflow="fold")
+    for p in result.parameters:
+        table.add_row(
+            escape(p.name), f"{p.estimate:.4g} {escape(p.unit)}", f"[{p.interval[0]:.4g}, {p.interval[1]:.4g}]",
+            f"{p.base_nominal:.4g}", "[green]yes[/]" if p.identifiable else "[yellow]no[/]", escape(p.reason),
+        )
+    console.print(table)
+    shift = Table(title="feature shift (standardised residual rms; SHIFT verdict)", title_justify="left")
+    for column in ("feature", "before (nominal physics)", "after (calibrated)"):
+        shift.add_column(column, overflow="fold")
+    for j, name in enumerate(result.features):
+        shift.add_row(
+            escape(name),
+            f"{result.shift_before.rms[j]:.2f}  {result.shift_before.verdicts[j]}",
+            f"{result.shift_after.rms[j]:.2f}  {result.shift_after.verdicts[j]}",
+        )
+    shift.add_row("all (mean square)", f"{result.shift_before.total:.3g}", f"{result.shift_after.total:.3g}")
+    console.print(shift)
+    for name, why in result.excluded_features.items():
+        console.print(f"not matched: {escape(name)} ({escape(why)})")
+    console.print(
+        f"discrepancy {result.discrepancy}, optimiser {escape(result.optimiser)}: {result.evaluations} "
+        f"evaluations, {result.rollouts} rollouts, seed {result.seed}"
+    )
+    console.print(f"overlay: {escape(str(result.overlay_path))}")
+    if json_path:
+        console.print(f"JSON: {escape(json_path)}")
+    console.print(f"next: gapgauge sweep {escape(str(result.overlay_path))} --rollouts 200000")

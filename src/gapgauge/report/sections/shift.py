@@ -1,0 +1,153 @@
+"""Section 3, the feature shift: per feature the verdict and its statistics, the joint tests over all
+features, whether simulation ranks the tried parameter sets, and one figure per feature."""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+
+from ...compare.shift import ShiftReport
+from .. import shift_plots
+from ..inputs import ReportInputs
+from .common import VERDICT_WORDS, Figure, fmt, fmt_interval
+
+DEFAULT_LEVEL = 0.05
+
+
+def verdict_counts(shift: ShiftReport) -> dict[str, int]:
+    """Verdict -> number of features with it (every verdict present, zeros included)."""
+    counts = dict.fromkeys(VERDICT_WORDS, 0)
+    for feature in shift.features:
+        if feature.verdict in counts:
+            counts[feature.verdict] += 1
+    return counts
+
+
+def names_with(shift: ShiftReport, verdict: str) -> list[str]:
+    return [f.name for f in shift.features if f.verdict == verdict]
+
+
+def trials_to_decide(shift: ShiftReport) -> int | None:
+    """The largest 'more trials would decide' figure among the undecided features, if any gives one."""
+    more = [f.more_trials for f in shift.features if f.verdict == "undecided" and f.more_trials is not None]
+    return max(more) if more else None
+
+
+def level(shift: ShiftReport) -> float:
+    return float(shift.settings.level)
+
+
+def mmd_p_value(shift: ShiftReport) -> float:
+    """The joint MMD test's p-value (NaN when it could not be run)."""
+    return float(shift.joint.mmd_p_value)
+
+
+# (heading, value of a FeatureShift as text) of the shift table
+def _columns() -> tuple[tuple[str, Any], ...]:
+    return (
+        ("trials", lambda f: fmt(f.n_trials)),
+        ("max |residual|", lambda f: fmt(f.max_abs_residual)),
+        ("bias", lambda f: fmt(f.bias)),
+        ("bias interval", lambda f: fmt_interval(f.bias_test_interval)),
+        ("bias / sim sd", lambda f: fmt(f.bias_sd_units)),
+        ("Wasserstein / sim sd", lambda f: fmt(f.wasserstein_sd_units)),
+        ("Kendall tau", lambda f: fmt(None if f.rank is None else f.rank.kendall)),
+        ("more trials to decide", lambda f: fmt(f.more_trials)),
+    )
+
+
+def _joint_rows(shift: ShiftReport) -> list[tuple[str, str]]:
+    j = shift.joint
+    return [
+        ("features tested", fmt(len(j.features))),
+        ("MMD² (unbiased)", fmt(j.mmd2)),
+        ("MMD kernel width", fmt(j.mmd_width)),
+        ("MMD p-value", fmt(j.mmd_p_value)),
+        ("MMD permutations", fmt(j.mmd_permutations)),
+        ("classifier AUC", fmt(j.classifier_auc)),
+        ("classifier AUC interval", fmt_interval(j.classifier_auc_interval)),
+        ("classifier p-value", fmt(j.classifier_p_value)),
+        ("classifier", j.classifier),
+        ("cross-validation", j.classifier_cross_validation),
+    ]
+
+
+def _objective_rows(shift: ShiftReport) -> list[tuple[str, str]]:
+    o = shift.objective
+    if o is None:
+        return []
+    return [
+        ("trials", fmt(o.n_trials)),
+        ("Kendall tau", fmt(o.rank.kendall)),
+        ("Kendall p-value (one-sided)", fmt(o.rank.kendall_p_value)),
+        ("Kendall tau interval", fmt_interval(o.rank.kendall_interval)),
+        ("Spearman rho", fmt(o.rank.spearman)),
+        ("Spearman interval", fmt_interval(o.rank.spearman_interval)),
+        ("link slope (hardware per simulated)", fmt(o.link.slope)),
+        ("link slope interval", fmt_interval(o.link.slope_interval)),
+        ("link intercept", fmt(o.link.intercept)),
+    ]
+
+
+def _settings_text(shift: ShiftReport) -> str:
+    s = shift.settings
+    return (
+        f"level {fmt(s.level)}, residual limit {fmt(s.residual_limit)}, equivalence margin "
+        f"{fmt(s.equivalence_margin)} sim sd, rank threshold {fmt(s.rank_threshold)}"
+    )
+
+
+def _figures(shift: ShiftReport) -> list[Figure]:
+    """One figure per feature: the simulated spread at each trial's parameters with the hardware values."""
+    labels = [str(t) for t in shift.trial_ids]
+    out = []
+    for j, feature in enumerate(shift.features):
+        simulated = None if shift.simulated_values is None else np.asarray(shift.simulated_values)[:, :, j]
+        hardware = np.asarray(feature.hardware, float)
+        png = shift_plots.feature_png(
+            feature.name,
+            hardware,
+            simulated,
+            np.asarray(feature.residuals, float),
+            float(shift.settings.residual_limit),
+            feature.verdict,
+            np.asarray(feature.simulated_mean, float),
+            np.asarray(feature.simulated_sd, float),
+            labels if len(labels) == hardware.size else None,
+        )
+        out.append(
+            Figure(
+                f"shift_{feature.name}",
+                png,
+                f"shift of {feature.name}",
+                f"{feature.name}: the simulated distribution at the trials' parameters with the hardware values.",
+            )
+        )
+    return out
+
+
+def shift_section(inputs: ReportInputs) -> dict[str, Any] | None:
+    """The shift table, the joint and objective tests and the per-feature figures, or None."""
+    shift = inputs.shift
+    if shift is None:
+        return None
+    columns = _columns()
+    rows = [
+        {
+            "name": f.name,
+            "verdict": VERDICT_WORDS.get(f.verdict, f.verdict),
+            "verdict_class": f.verdict if f.verdict in VERDICT_WORDS else "undecided",
+            "cells": [cell(f) for _, cell in columns],
+            "detail": f.reason,
+        }
+        for f in shift.features
+    ]
+    return {
+        "columns": [label for label, _ in columns],
+        "rows": rows,
+        "joint": _joint_rows(shift),
+        "objective": _objective_rows(shift),
+        "settings": _settings_text(shift),
+        "figures": _figures(shift),
+    }

@@ -1,0 +1,30 @@
+"""Section 2, the hardware trials: one row per trial file, its hash, robot, outcome and notes."""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Any
+
+from ..inputs import ReportInputs
+from .common import fmt
+
+
+def trials_section(inputs: ReportInputs) -> list[dict[str, Any]]:
+    """One row per trial (every string as stored: the template escapes it)."""
+    return [
+        {
+            "file": Path(t.source_path).name or t.source_path,
+            "source_path": t.source_path,
+            "sha256": t.sha256,
+            "sha_short": t.sha256[:12],
+            "robot_id": t.robot_id,
+            "recorded_at": t.recorded_at,
+            "outcome": t.outcome or "not given",
+            "synthetic": bool(t.synthetic),
+            "objective": fmt(t.objective),
+            "notes": t.notes,
+            "ingested_at": t.ingested_at,
+            "tool_version": t.tool_version,
+        }
+        for t in inputs.trials
+    ]
