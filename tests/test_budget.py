@@ -1,4 +1,5 @@
-"""The trial budget (gapgauge.compare.budget): its Monte Carlo machinery against outside references."""
+"""The trial budget (gapgauge.compare.budget, gapgauge.app.budget): its Monte Carlo machinery against
+outside references."""
 
 from __future__ import annotations
 
@@ -13,19 +14,20 @@ from sklearn.gaussian_process.kernels import ConstantKernel, Matern
 
 from gapgauge.compare.budget import (
     Belief,
-    _Conditioner,
+    Beliefs,
+    BudgetPlan,
+    Conditioner,
     budget_at,
     budget_from_beliefs,
     draw_targets,
     hardware_only_belief,
     multifidelity_belief,
-    posterior_covariance,
     reach_curve,
     run_policy,
 )
-from gapgauge.compare.gp import ExactGP
 from gapgauge.compare.kernels import Matern52
 from gapgauge.compare.multifidelity import MultiFidelityGP
+from gapgauge.compare.prior import hardware_only_gp
 
 
 def branin(U: np.ndarray) -> np.ndarray:
@@ -84,7 +86,7 @@ def test_sequential_conditioning_matches_scikit_learn_gp_posterior():
     y_at = np.array([3, 17, 40, 8, 55])
     y = np.sin(6 * X[y_at, 0]) + X[y_at, 1]
     ell, noise = 0.35, 0.01
-    cond = _Conditioner(matern_belief(X, ell, noise), draws=1, max_observations=len(y_at))
+    cond = Conditioner(matern_belief(X, ell, noise), draws=1, max_observations=len(y_at))
     for i, value in zip(y_at, y, strict=True):
         cond.observe(np.array([i]), np.array([value]), np.array([True]))
     sk = GaussianProcessRegressor(ConstantKernel(1.0, "fixed") * Matern(ell, "fixed", nu=2.5), alpha=noise,
@@ -94,15 +96,22 @@ def test_sequential_conditioning_matches_scikit_learn_gp_posterior():
     np.testing.assert_allclose(np.sqrt(cond.var[0]), sd, atol=1e-7)
 
 
-def test_exact_gp_posterior_covariance_matches_scikit_learn():
+def test_cold_start_belief_with_three_trials_is_scikit_learn_gp_posterior():
+    # the cold start's belief after 3 trials is the posterior of its GP with the fitted hyperparameters:
+    # scikit-learn's GaussianProcessRegressor with normalize_y (same standardisation), the kernel fixed
+    # at those values, the constant mean ~ N(0, 1) as ConstantKernel(1) added, the noise as alpha
     rng = np.random.default_rng(4)
-    X, Xs = rng.uniform(size=(12, 3)), rng.uniform(size=(7, 3))
-    y = X @ np.array([1.0, -2.0, 0.5]) + 0.1 * rng.standard_normal(12)
-    ell = np.array([0.4, 0.7, 1.1])
-    gp = ExactGP(Matern52(1.3, ell), 0.02, optimize=False).fit(X, y)
-    sk = GaussianProcessRegressor(ConstantKernel(1.3, "fixed") * Matern(ell, "fixed", nu=2.5), alpha=0.02,
-                                  optimizer=None).fit(X, y)
-    np.testing.assert_allclose(posterior_covariance(gp, Xs), sk.predict(Xs, return_cov=True)[1], atol=1e-9)
+    points = rng.uniform(size=(15, 3))
+    y_known = points[:3] @ np.array([1.0, -2.0, 0.5]) + 0.1 * rng.standard_normal(3)
+    belief = hardware_only_belief(points, 3, y_known, (0.0, 1.0), seed=0)
+    fitted = hardware_only_gp(3, 0).fit(points[:3], y_known, basis=np.ones((3, 1)))
+    kernel = (ConstantKernel(fitted.kernel_.variance, "fixed") * Matern(fitted.kernel_.length_scale, "fixed", nu=2.5)
+              + ConstantKernel(1.0, "fixed"))
+    sk = GaussianProcessRegressor(kernel, alpha=fitted.noise_, normalize_y=True, optimizer=None).fit(points[:3], y_known)
+    mean, cov = sk.predict(points, return_cov=True)
+    np.testing.assert_allclose(belief.mean, mean, atol=1e-8)
+    np.testing.assert_allclose(belief.cov, cov, atol=1e-8)
+    assert belief.n_known == 3
 
 
 def test_multifidelity_covariance_agrees_with_its_predictive_sd():
@@ -141,60 +150,61 @@ def test_prior_that_favours_the_optimum_reaches_the_target_sooner_than_a_cold_st
     assert cold_start > with_prior
 
 
-def _synthetic_plan(seed: int, draws: int = 48):
+def _synthetic_plan(seed: int, draws: int = 48) -> BudgetPlan:
     U = sobol(7, 2, 5)
     mean = branin(U) / 50.0
-    prior = Belief(mean, 0.05 * Matern52(1.0, 0.3)(U), 1e-3)
-    margin = Belief(0.3 - 0.4 * U[:, 0] * U[:, 1], 0.01 * Matern52(1.0, 0.4)(U), 1e-4)
-    cold = hardware_only_belief(U, 0, np.zeros(0), (float(np.mean(mean)), float(np.std(mean))), 1)
-    cold_margin = hardware_only_belief(U, 0, np.zeros(0), (0.2, 0.2), 1)
-    return budget_from_beliefs(prior, margin, cold, cold_margin, objective_noise_sd=0.03, margin_noise_sd=0.01,
-                               max_trials=12, draws=draws, seed=seed)
+    beliefs = Beliefs(
+        objective=Belief(mean, 0.05 * Matern52(1.0, 0.3)(U), 1e-3),
+        cold_objective=hardware_only_belief(U, 0, np.zeros(0), (float(np.mean(mean)), float(np.std(mean))), 1),
+        objective_noise_sd=0.03,
+        margin=Belief(0.3 - 0.4 * U[:, 0] * U[:, 1], 0.01 * Matern52(1.0, 0.4)(U), 1e-4),
+        cold_margin=hardware_only_belief(U, 0, np.zeros(0), (0.2, 0.2), 1),
+        margin_noise_sd=0.01,
+    )
+    return budget_from_beliefs(beliefs, max_trials=12, draws=draws, seed=seed)
 
 
 def test_budget_is_reproducible_from_its_seed():
-    a, b, c = _synthetic_plan(7).to_json(), _synthetic_plan(7).to_json(), _synthetic_plan(8).to_json()
+    a, b, c = _synthetic_plan(7).to_dict(), _synthetic_plan(7).to_dict(), _synthetic_plan(8).to_dict()
     assert a == b
     assert a["with_prior"]["trials_to_target"] != c["with_prior"]["trials_to_target"]
 
 
-def test_budget_json_has_the_promised_keys_and_ordered_percentiles():
-    plan = _synthetic_plan(0, draws=64).to_json()
-    data = json.loads(json.dumps(plan))  # plain JSON, no NaN or numpy types
-    for arm in ("with_prior", "cold_start"):
-        assert {"p50", "p80", "p95", "expected_falls"} <= set(data[arm])
-        p = [data[arm][k] if data[arm][k] is not None else np.inf for k in ("p50", "p80", "p95")]
+def test_budget_plan_round_trips_through_strict_json_with_ordered_percentiles():
+    plan = _synthetic_plan(0, draws=64)
+    data = json.loads(json.dumps(plan.to_dict(), allow_nan=False))  # strict JSON (RFC 8259): no NaN
+    assert (data["kind"], data["schema_version"]) == ("budget", 1)
+    assert BudgetPlan.from_dict(data) == plan
+    for arm in (plan.with_prior, plan.cold_start):
+        p = [v if v is not None else np.inf for v in (arm.p50, arm.p80, arm.p95)]
         assert p[0] <= p[1] <= p[2]
-    assert [c["trial"] for c in data["curve"]] == list(range(1, 13))
-    assert {"seed", "draws", "max_trials", "target"} <= set(data)
-    assert data["sentence"].startswith("Book ")
+    assert [c.trial for c in plan.curve] == list(range(1, 13))
+    assert plan.sentence.startswith("Book ")
 
 
 @pytest.mark.slow
-def test_budget_command_on_a_small_real_store_prints_the_booking_and_stores_the_json(tmp_path):
-    from click.testing import CliRunner
-
-    from gapgauge import load_scenario
-    from gapgauge.cli import main
-    from gapgauge.sim.standin import run_standin
-    from gapgauge.app.sweep import sweep
-    from gapgauge.store import Store
+def test_budget_job_on_a_small_real_store_stores_the_plan_it_returns(tmp_path):
+    from gapgauge.app.budget import plan_budget
     from gapgauge.app.ingest import ingest
+    from gapgauge.app.sweep import sweep
+    from gapgauge.scenario import load_scenario
+    from gapgauge.sim.standin import run_standin
+    from gapgauge.store import Store
 
     root = Path(__file__).resolve().parents[1]
     path = root / "scenarios" / "push_recovery.toml"
-    scenario = load_scenario(path)
-    store = Store(tmp_path / "s.sqlite")
-    sweep(scenario, 160, store=store, seed=0, workers=2, progress=False)
-    logs = run_standin(scenario, root / "scenarios" / "standin" / "close.toml", design=3, out_dir=tmp_path, seed=0)
-    ingest(scenario, store, logs, matches=2, seed=0, progress=False)
-    store.close()
-    out = tmp_path / "budget.json"
-    run = CliRunner().invoke(main, ["budget", str(path), "--store", str(tmp_path / "s.sqlite"), "--draws", "16",
-                                    "--max-trials", "6", "--json", str(out)])
-    assert run.exit_code == 0, run.output
-    assert "Book " in run.output and "without it." in run.output
-    data = json.loads(out.read_text())
-    assert data["draws"] == 16 and len(data["curve"]) == 6
-    stored, _ = Store(tmp_path / "s.sqlite", create=False).load_model("budget", scenario.content_hash)
-    assert stored["with_prior"] == data["with_prior"]
+    store_path = tmp_path / "s.sqlite"
+    sweep(path, 160, store=store_path, seed=0, workers=2)
+    logs = run_standin(path, root / "scenarios" / "standin" / "close.toml", design=3, out_dir=tmp_path, seed=0)
+    ingest(path, store_path, logs, matches=2, seed=0)
+    calls: list[tuple[str, int, int]] = []
+    plan = plan_budget(path, store_path, draws=16, max_trials=6, progress=lambda *call: calls.append(call))
+    assert plan.draws == 16 and len(plan.curve) == 6
+    assert plan.sentence.startswith("Book ") and plan.sentence.endswith("without it.")
+    # one call per simulated trial of each arm, ending at the total
+    assert [c for c in calls if c[1] == c[2]] == [
+        ("budget: simulated trials, with the prior", 6, 6), ("budget: simulated trials, cold start", 6, 6)
+    ]
+    with Store(store_path, create=False) as store:
+        stored = store.load_result(BudgetPlan, load_scenario(path).content_hash)
+    assert stored == plan

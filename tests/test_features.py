@@ -358,7 +358,7 @@ def test_unloaded_samples_hold_the_last_centre_of_pressure():
 def test_row_blocking_does_not_change_results(monkeypatch):
     traj = standing_trajectory(nbatch=7, seed=8)
     whole = F.compute_features(traj, SETTINGS, F.AVAILABLE_FEATURES)
-    monkeypatch.setattr(F, "BLOCK_SAMPLES", 1)  # one row per block
+    monkeypatch.setattr("gapgauge.features.compute.BLOCK_SAMPLES", 1)  # one row per block
     rowwise = F.compute_features(traj, SETTINGS, F.AVAILABLE_FEATURES)
     for name in F.AVAILABLE_FEATURES:
         np.testing.assert_allclose(rowwise[name], whole[name], rtol=1e-12, atol=1e-15, err_msg=name)

@@ -23,7 +23,7 @@ from gapgauge import ScenarioError, load_scenario
 from gapgauge.cli import main
 from gapgauge.errors import LogError
 from gapgauge.records import TrialRecord
-from gapgauge.report.html import write_report
+from gapgauge.app.report import write_report
 from gapgauge.store import Store
 from gapgauge.app.ingest import ingest
 from gapgauge.logs import read_log

@@ -23,12 +23,12 @@ _LAZY = {
     "read_log": "gapgauge.logs:read_log",
     "ingest": "gapgauge.app.ingest:ingest",
     "run_standin": "gapgauge.sim.standin:run_standin",
-    "assess_shift": "gapgauge.compare.shift:assess_shift",
+    "assess_shift": "gapgauge.app.shift:assess_shift",
     "fit_prior": "gapgauge.compare.prior:fit_prior",
     "propose": "gapgauge.compare.propose:propose",
     "plan_budget": "gapgauge.compare.budget:plan_budget",
     "calibrate": "gapgauge.app.calibrate:calibrate",
-    "write_report": "gapgauge.report.html:write_report",
+    "write_report": "gapgauge.app.report:write_report",
     "run_demo": "gapgauge.app.demo:run_demo",
 }
 

@@ -162,7 +162,8 @@ class FallModel:
     def log_marginal_likelihood(
         self, theta: np.ndarray | None = None, eval_gradient: bool = False
     ) -> float | tuple[float, np.ndarray]:
-        """The margin model's hardware-level log marginal likelihood (:meth:`MultiFidelityGP.log_marginal_likelihood`)."""
+        """The margin model's hardware-level log marginal likelihood
+        (:meth:`MultiFidelityGP.log_marginal_likelihood`)."""
         return self.model_.log_marginal_likelihood(theta, eval_gradient)
 
     def predict_proba(self, X: np.ndarray) -> np.ndarray:

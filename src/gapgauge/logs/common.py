@@ -1,11 +1,9 @@
 """What every hardware log reader shares: the trial record, the sidecar, the sample checks, resampling.
 
-A reader (:mod:`gapgauge.logs.csv`, :mod:`gapgauge.logs.bag`) turns its file into one or more
-:class:`Stream` objects in SI and hands them with the :class:`Sidecar` to :func:`build_trial`, which
-checks the samples (finite, time strictly increasing, no gap longer than ``max_gap_s``, not slower
-than ``min_rate_hz``, inside plausible ranges and the compiled model's joint limits), resamples every
-channel by linear interpolation onto ``k / sample_rate_hz`` over the logged span and low-passes it
-when ``[hardware].lowpass_hz`` is set. The contract itself is described in :mod:`gapgauge.logs`.
+A reader (:mod:`.csv`, :mod:`.bag`) turns its file into :class:`Stream` objects in SI and hands them with
+the :class:`Sidecar` to :func:`build_trial`, which checks the samples, resamples every channel onto
+``k / sample_rate_hz`` over the logged span and low-passes it when ``[hardware].lowpass_hz`` is set.
+The contract and the checks are described in :mod:`gapgauge.logs`.
 """
 
 from __future__ import annotations
@@ -105,7 +103,7 @@ class Stream:
     locate_cell: Callable[[int, str], str]
 
 
-# ---- file size and sidecar location -----------------------------------------------------------
+# ---- the sidecar and the file size ------------------------------------------------------------
 
 
 def sidecar_path_for(path: Path) -> Path:
@@ -124,9 +122,6 @@ def check_size(path: Path, size: int, scenario: Scenario) -> None:
         )
     if size == 0:
         raise LogError(f"{path}: the file is empty; give the trial's log with a header row and data rows")
-
-
-# ---- the sidecar ---------------------------------------------------------------------------------
 
 
 def read_sidecar(scenario: Scenario, path: Path) -> Sidecar:

@@ -31,7 +31,7 @@ import mujoco
 import numpy as np
 
 from ..errors import ScenarioError
-from ..scenario import Scenario
+from ..scenario import Scenario, compile_model
 from ..trajectory import JOINTS
 
 #: servo actuator of each joint, in JOINTS order (names in models/planar_body.xml)
@@ -80,29 +80,24 @@ class ModelLayout:
     support_z: float
 
 
-# Per-path cache of compiled base models: compiling the MJCF costs milliseconds, a rollout's copy does
-# not. Keyed by the resolved path and its mtime so an edited file is compiled afresh.
-_BASE_MODELS: dict[Path, tuple[int, mujoco.MjModel, ModelLayout]] = {}
+# Layouts by compiled model: the compiled model itself is cached by scenario.compile_model (per path and
+# modification time), so a recompiled file gets a new model object and a fresh layout.
+_LAYOUTS: dict[int, tuple[mujoco.MjModel, ModelLayout]] = {}
 
 
 def _load(path: Path, scenario_path: Path | None = None) -> tuple[mujoco.MjModel, ModelLayout]:
-    path = path.resolve()
-    mtime = path.stat().st_mtime_ns
-    hit = _BASE_MODELS.get(path)
-    if hit is not None and hit[0] == mtime:
-        return hit[1], hit[2]
+    model = compile_model(path, scenario_path)
+    hit = _LAYOUTS.get(id(model))
+    if hit is not None and hit[0] is model:
+        return model, hit[1]
     try:
-        model = mujoco.MjModel.from_xml_path(str(path))
         layout = _layout(model)
-    except ValueError as exc:
-        # the scenario loader only looks for <mujoco near the start; compiling is MuJoCo's job, and a
-        # model it cannot use (cut-off XML, a missing include, no ankle_servo) is the user's to fix
-        text = " ".join(str(exc).split())
+    except ValueError as exc:  # the model compiles but lacks what the simulator drives (no ankle_servo...)
         raise ScenarioError(
-            f"{scenario_path or path}: key 'model': MuJoCo cannot use {path} ({text}); "
+            f"{scenario_path or path}: key 'model': MuJoCo cannot use {Path(path).resolve()} ({exc}); "
             "fix the MJCF file or name the bundled models/planar_body.xml"
         ) from None
-    _BASE_MODELS[path] = (mtime, model, layout)
+    _LAYOUTS[id(model)] = (model, layout)
     return model, layout
 
 

@@ -14,17 +14,17 @@ from scipy import optimize
 from ...errors import ModelError
 from ...progress import Progress, or_silent
 from ...scenario import Scenario
-from ..shift import shift_from_arrays
 from .problem import (
     DISCREPANCIES,
     ResidualProblem,
     Simulator,
     feature_table,
-    quiet_nan_warnings,
+    matched_features,
     search_box,
+    shift_at_physics,
     simulated_spreads,
 )
-from .result import CalibrationResult, PhysicalEstimate, ShiftAtPhysics
+from .result import CalibrationResult, PhysicalEstimate
 
 OPTIMISERS = ("differential_evolution",)
 STAGE = "calibrate: simulator calls"
@@ -149,23 +149,7 @@ def calibrate(
     names = tuple(physics_names) if physics_names is not None else scenario.calibration_physics
     columns, low, high = search_box(scenario, names, search_bounds, widen)
 
-    excluded: dict[str, str] = {}
-    chosen: list[str] = []
-    for fname in scenario.features.names:
-        if fname == "fell":
-            continue
-        if fname not in names_all:
-            excluded[fname] = "not recorded in the trials"
-        elif not np.isfinite(hardware_all[:, names_all.index(fname)]).any():
-            excluded[fname] = "no trial has a value"
-        else:
-            chosen.append(fname)
-    if not chosen:
-        raise ModelError(
-            "no hardware feature to match: the trials have none of "
-            f"{', '.join(scenario.features.names[1:])}; ingest trials with their features first"
-        )
-    hardware = np.column_stack([hardware_all[:, names_all.index(f)] for f in chosen])
+    hardware, chosen, excluded = matched_features(scenario, hardware_all, names_all)
 
     report = or_silent(progress)
     total_calls = 1 + (generations + 1) + (1 + 2 * polish_evaluations if polish else 0) + 2
@@ -218,9 +202,9 @@ def calibrate(
     estimates = _estimates(scenario, names, low, high, u_best, laplace, identifiable_fraction, problem.m)
     after_all = np.concatenate([sim_best[None], after_sims], axis=0)  # (K x n x f)
     verdict_seed = int(np.random.default_rng([seed, 4]).integers(2**31))
-    shift_before = _shift(scenario, problem, problem.residuals(nominal_sim[None, :, keep])[0],
-                          problem.nominal, before_sims, verdict_seed)
-    shift_after = _shift(scenario, problem, r_best, best_physics, after_all, verdict_seed)
+    shift_before = shift_at_physics(problem, problem.residuals(nominal_sim[None, :, keep])[0],
+                                  problem.nominal, before_sims, verdict_seed)
+    shift_after = shift_at_physics(problem, r_best, best_physics, after_all, verdict_seed)
     return CalibrationResult(
         scenario_name=scenario.name,
         scenario_path=Path(scenario.path),
@@ -443,30 +427,3 @@ def _reason(
                 f"the features alike for both; interval spans {pct} of the range"
             )
     return f"the 95% interval spans {pct} of the search range (from {100 * threshold:.0f}% on, not pinned)"
-
-
-def _shift(
-    scenario: Scenario, problem: ResidualProblem, residuals: np.ndarray, physics: np.ndarray, simulated: np.ndarray,
-    seed: int,
-) -> ShiftAtPhysics:
-    """Standardised bias and rms per feature from the residuals ``(m,)`` at ``physics``, and the shift
-    verdicts (:func:`gapgauge.compare.shift.shift_from_arrays`) on the matched simulations
-    ``simulated (K x n x f)``, row 0 at ``physics`` and the others randomised around it."""
-    full = np.full(problem.observed.shape, np.nan)
-    full[problem.observed] = residuals
-    with quiet_nan_warnings():
-        bias = np.nanmean(full, axis=0)
-        rms = np.sqrt(np.nanmean(full**2, axis=0))
-    report = shift_from_arrays(
-        problem.hardware, np.transpose(simulated, (1, 0, 2)), list(problem.features), scenario.shift, seed,
-    )
-    return ShiftAtPhysics(
-        physics={r.name: float(v) for r, v in zip(scenario.physics, physics, strict=True)},
-        features=problem.features,
-        bias=bias,
-        rms=rms,
-        verdicts=tuple(report.feature(f).verdict for f in problem.features),
-        reasons=tuple(report.feature(f).reason for f in problem.features),
-        total=float(np.mean(residuals**2)),
-        verdict_source="gapgauge.compare.shift.shift_from_arrays",
-    )

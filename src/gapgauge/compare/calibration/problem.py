@@ -1,6 +1,6 @@
 """The residual problem of a calibration: standardised residuals of the hardware features against the
-simulator at a physics setting, the discrepancy criteria built on them, and the simulated spreads
-that standardise them.
+simulator at a physics setting, the discrepancy criteria built on them, the simulated spreads
+that standardise them, and the per-feature shift at one physics setting.
 
 A physics setting is a point ``u`` of the unit cube of the search box (``k`` calibrated quantities);
 :class:`ResidualProblem` turns many such points into one simulator call (every setting at every
@@ -19,6 +19,8 @@ import numpy as np
 from ...errors import ModelError, ScenarioError
 from ...records import RolloutBatch
 from ...scenario import Scenario
+from ..shift import shift_from_arrays
+from .result import ShiftAtPhysics
 
 #: ``simulator(params (m x dim), physics (m x K)) -> RolloutBatch`` with the features measured.
 Simulator = Callable[[np.ndarray, np.ndarray], RolloutBatch]
@@ -255,6 +257,34 @@ def feature_table(
     return table, names
 
 
+def matched_features(
+    scenario: Scenario, table: np.ndarray, names: list[str]
+) -> tuple[np.ndarray, list[str], dict[str, str]]:
+    """The scenario's features the trials have: the hardware table ``(n x f)`` of them, their names, and
+    feature name -> why it is left out (``fell`` is binary and always left out).
+
+    Raises:
+        ModelError: no feature of the scenario has a value in any trial.
+    """
+    excluded: dict[str, str] = {}
+    chosen: list[str] = []
+    for fname in scenario.features.names:
+        if fname == "fell":
+            continue
+        if fname not in names:
+            excluded[fname] = "not recorded in the trials"
+        elif not np.isfinite(table[:, names.index(fname)]).any():
+            excluded[fname] = "no trial has a value"
+        else:
+            chosen.append(fname)
+    if not chosen:
+        raise ModelError(
+            "no hardware feature to match: the trials have none of "
+            f"{', '.join(scenario.features.names[1:])}; ingest trials with their features first"
+        )
+    return np.column_stack([table[:, names.index(f)] for f in chosen]), chosen, excluded
+
+
 def search_box(
     scenario: Scenario,
     names: tuple[str, ...],
@@ -304,3 +334,29 @@ def search_box(
             )
         low[c], high[c] = lo, hi
     return columns, low, high
+
+
+def shift_at_physics(
+    problem: ResidualProblem, residuals: np.ndarray, physics: np.ndarray, simulated: np.ndarray, seed: int,
+) -> ShiftAtPhysics:
+    """Standardised bias and rms per feature from the residuals ``(m,)`` at ``physics``, and the shift
+    verdicts (:func:`gapgauge.compare.shift.shift_from_arrays`) on the matched simulations
+    ``simulated (K x n x f)``, row 0 at ``physics`` and the others randomised around it."""
+    full = np.full(problem.observed.shape, np.nan)
+    full[problem.observed] = residuals
+    with quiet_nan_warnings():
+        bias = np.nanmean(full, axis=0)
+        rms = np.sqrt(np.nanmean(full**2, axis=0))
+    report = shift_from_arrays(
+        problem.hardware, np.transpose(simulated, (1, 0, 2)), list(problem.features), problem.scenario.shift, seed,
+    )
+    return ShiftAtPhysics(
+        physics={r.name: float(v) for r, v in zip(problem.scenario.physics, physics, strict=True)},
+        features=problem.features,
+        bias=bias,
+        rms=rms,
+        verdicts=tuple(report.feature(f).verdict for f in problem.features),
+        reasons=tuple(report.feature(f).reason for f in problem.features),
+        total=float(np.mean(residuals**2)),
+        verdict_source="gapgauge.compare.shift.shift_from_arrays",
+    )

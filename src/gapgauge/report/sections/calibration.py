@@ -19,27 +19,28 @@ def does_not_carry_over_after(calibration: CalibrationResult) -> tuple[int, int]
     return sum(1 for v in verdicts if v == "does_not_carry_over"), len(verdicts)
 
 
-def pinned_down(calibration: CalibrationResult) -> list[str]:
-    """The physical parameters the trials pin down."""
-    return [p.name for p in calibration.parameters if p.identifiable]
-
-
-def _side(shift: Any) -> dict[str, str]:
-    """Feature -> "verdict (rms x sd)" of one side of the before/after, plus the discrepancy D."""
-    out = {
-        name: f"{VERDICT_WORDS.get(verdict, verdict)} (rms {fmt(rms)} sd)"
-        for name, verdict, rms in zip(shift.features, shift.verdicts, shift.rms, strict=True)
-    }
-    out["discrepancy D (all features)"] = fmt(shift.total)
-    return out
+def _verdict_text(verdict: str, rms: float) -> str:
+    return f"{VERDICT_WORDS.get(verdict, verdict)} (rms {fmt(rms)} sd)"
 
 
 def _before_after(calibration: CalibrationResult) -> list[dict[str, str]]:
-    before, after = _side(calibration.shift_before), _side(calibration.shift_after)
-    return [
-        {"name": k, "before": before.get(k, "–"), "after": after.get(k, "–")}
-        for k in dict.fromkeys([*before, *after])
+    """Per matched feature its verdict and rms residual before and after, then the discrepancy D."""
+    rows = [
+        {
+            "name": r.feature,
+            "before": _verdict_text(r.verdict_before, r.rms_before),
+            "after": _verdict_text(r.verdict_after, r.rms_after),
+        }
+        for r in calibration.before_after()
     ]
+    rows.append(
+        {
+            "name": "discrepancy D (all features)",
+            "before": fmt(calibration.shift_before.total),
+            "after": fmt(calibration.shift_after.total),
+        }
+    )
+    return rows
 
 
 def _intervals_figure(calibration: CalibrationResult) -> Figure | None:
@@ -64,18 +65,15 @@ def _intervals_figure(calibration: CalibrationResult) -> Figure | None:
 
 
 def _shift_figure(calibration: CalibrationResult) -> Figure | None:
-    before, after = calibration.shift_before, calibration.shift_after
-    rms_before = dict(zip(before.features, np.asarray(before.rms, float), strict=True))
-    rms_after = dict(zip(after.features, np.asarray(after.rms, float), strict=True))
-    names = [n for n in before.features if n in rms_after and np.isfinite(rms_before[n]) and np.isfinite(rms_after[n])]
-    if not names:
+    rows = [r for r in calibration.before_after() if np.isfinite(r.rms_before) and np.isfinite(r.rms_after)]
+    if not rows:
         return None
     return Figure(
         "calibration_shift",
         plots.shift_before_after(
-            names,
-            np.array([rms_before[n] for n in names]),
-            np.array([rms_after[n] for n in names]),
+            [r.feature for r in rows],
+            np.array([r.rms_before for r in rows]),
+            np.array([r.rms_after for r in rows]),
             label="rms standardised residual (in simulated spreads)",
         ),
         "feature shift before and after calibration",

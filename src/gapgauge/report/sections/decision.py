@@ -40,7 +40,7 @@ def _calibrated_next(inputs: ReportInputs, verdict: str, reasons: list[str]) -> 
     after_bad, matched = calibration_section.does_not_carry_over_after(calibration)
     if matched:
         reasons.append(f"at the calibrated physics {after_bad} of {matched} matched features do not carry over")
-    pinned = calibration_section.pinned_down(calibration)
+    pinned = calibration.identifiable
     if pinned:
         reasons.append(f"calibration pinned down {', '.join(pinned)}")
     overlay = calibration.overlay_path

@@ -93,8 +93,9 @@ def _objective_rows(shift: ShiftReport) -> list[tuple[str, str]]:
 def _settings_text(shift: ShiftReport) -> str:
     s = shift.settings
     return (
-        f"level {fmt(s.level)}, residual limit {fmt(s.residual_limit)}, equivalence margin "
-        f"{fmt(s.equivalence_margin)} sim sd, rank threshold {fmt(s.rank_threshold)}"
+        f"level {fmt(s.level)}, residual limit {fmt(s.residual_limit)}, offset limit {fmt(s.offset_limit)}, "
+        f"rank threshold {fmt(s.rank_threshold)}, bootstrap {fmt(s.bootstrap)}, permutations "
+        f"{fmt(s.permutations)}, power {fmt(s.power)}"
     )
 
 

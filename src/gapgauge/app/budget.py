@@ -1,0 +1,76 @@
+"""The trial budget as a job: the store's current prior in, the stored :class:`BudgetPlan` out.
+
+The prior is the one ``gapgauge propose`` would use (:func:`gapgauge.app.prior.current_prior`: the
+stored fit when it is current, else a new one); the Monte Carlo is
+:func:`gapgauge.compare.budget.plan_from_prior`; the plan is saved as kind ``"budget"`` for the report.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import time
+from pathlib import Path
+
+from ..compare.budget import (
+    DEFAULT_CANDIDATES,
+    DEFAULT_CONFIDENCE,
+    DEFAULT_DRAWS,
+    DEFAULT_MAX_FALL_RISK,
+    DEFAULT_MAX_TRIALS,
+    DEFAULT_TARGET_FRACTION,
+    BudgetPlan,
+    check_options,
+    plan_from_prior,
+)
+from ..progress import Progress
+from ..scenario import Scenario
+from ..store import Store
+from .common import as_scenario, open_store
+from .prior import current_prior
+
+
+def plan_budget(
+    scenario: Scenario | str | Path,
+    store: Store | str | Path,
+    *,
+    target_fraction: float = DEFAULT_TARGET_FRACTION,
+    target_value: float | None = None,
+    confidence: float = DEFAULT_CONFIDENCE,
+    max_trials: int = DEFAULT_MAX_TRIALS,
+    draws: int = DEFAULT_DRAWS,
+    seed: int = 0,
+    max_fall_risk: float = DEFAULT_MAX_FALL_RISK,
+    n_candidates: int = DEFAULT_CANDIDATES,
+    progress: Progress | None = None,
+) -> BudgetPlan:
+    """How many hardware trials to book to reach the target, with the simulation prior and without;
+    the plan is stored in ``store`` (kind ``"budget"``) and returned.
+
+    Args:
+        scenario: a Scenario or the path of its TOML.
+        store: a :class:`Store` (left open) or the path of one (opened and closed here).
+        target_fraction, target_value, confidence, max_trials, draws, max_fall_risk, n_candidates: as
+            for :func:`gapgauge.compare.budget.plan_from_prior` (checked before the prior is read).
+        seed: seeds the prior's fit when one is needed, the candidates, the draws and the noise.
+        progress: called as ``progress(stage, done, total)`` as the simulated trials go.
+
+    Raises:
+        ModelError: an argument out of range (named), or no prior can be fitted.
+        StoreError: no store at the path.
+    """
+    check_options(target_fraction=target_fraction, target_value=target_value, confidence=confidence,
+                  max_trials=max_trials, draws=draws, max_fall_risk=max_fall_risk, seed=seed,
+                  n_candidates=n_candidates)
+    started = time.perf_counter()
+    scenario = as_scenario(scenario)
+    with open_store(store) as opened:
+        prior = current_prior(scenario, opened, seed=seed)
+        plan = plan_from_prior(
+            prior, target_fraction=target_fraction, target_value=target_value, confidence=confidence,
+            max_trials=max_trials, draws=draws, seed=seed, max_fall_risk=max_fall_risk,
+            n_candidates=n_candidates, progress=progress,
+        )
+        # the wall time of the job, the prior's loading or fit included
+        plan = dataclasses.replace(plan, seconds=time.perf_counter() - started)
+        opened.save_result(scenario.content_hash, plan)
+    return plan
