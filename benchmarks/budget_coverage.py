@@ -4,8 +4,9 @@ For each run (seeded; the stand-in profiles of ``scenarios/standin/`` in turn):
 
 1. a store with the cached sweep of ``push_recovery`` (one sweep, reused by every run);
 2. 3-5 first trials on the stand-in robot (``run_standin`` on a safe Sobol design, then ``ingest``);
-3. the prior (``fit_prior``) and the budget's P80 on a fixed candidate set of the safe bounds
-   (``budget_from_prior``, the core of ``gapgauge budget``);
+3. the prior (``gapgauge.app.prior.current_prior``, as the budget job takes it) and the budget's P80
+   on a fixed candidate set of the safe bounds (``gapgauge.compare.budget.plan_from_prior``, the core
+   of ``gapgauge budget``);
 4. the realised tuning run: the same policy, from the same prior, against the stand-in's truth on the
    same candidates (``simulate`` at the profile's physics, which is what the stand-in runs; without
    the logger's sensor noise), up to ``max_trials`` trials. A trial falls when the truth's rollout
@@ -33,14 +34,14 @@ from pathlib import Path
 
 import numpy as np
 
-from gapgauge import load_scenario
-from gapgauge.compare.budget import beliefs_from_prior, budget_from_prior, candidate_set, draw_targets, run_policy
-from gapgauge.compare.prior import fit_prior
+from gapgauge.app.ingest import ingest
+from gapgauge.app.prior import current_prior
+from gapgauge.app.sweep import sweep
+from gapgauge.compare.budget import beliefs_from_prior, candidate_set, draw_targets, plan_from_prior, run_policy
+from gapgauge.scenario import load_scenario
 from gapgauge.sim.rollout import simulate
 from gapgauge.sim.standin import load_profile, run_standin
-from gapgauge.app.sweep import sweep
 from gapgauge.store import Store
-from gapgauge.app.ingest import ingest
 
 ROOT = Path(__file__).resolve().parents[1]
 SCENARIO = ROOT / "scenarios" / "push_recovery.toml"
@@ -57,7 +58,7 @@ def cached_sweep(scenario, rollouts: int) -> Path:
         CACHE.mkdir(parents=True, exist_ok=True)
         partial = path.with_suffix(".partial")
         store = Store(partial)
-        sweep(scenario, rollouts, store=store, seed=0, workers=2, progress=False)
+        sweep(scenario, rollouts, store=store, seed=0, workers=2)
         store.close()
         partial.rename(path)
     return path
@@ -95,10 +96,10 @@ def one_run(scenario, sweep_path: Path, profile: str, seed: int, candidates: np.
     n_first = 3 + seed % 3
     logs = run_standin(scenario, ROOT / "scenarios" / "standin" / f"{profile}.toml", design=n_first,
                        out_dir=work / f"logs_{seed}", seed=seed)
-    ingest(scenario, store, logs, matches=4, seed=seed, progress=False)
-    prior = fit_prior(scenario, store, seed=seed, progress=False)
-    plan = budget_from_prior(prior, candidates, seed=seed, max_trials=MAX_TRIALS, draws=draws,
-                             target_fraction=TARGET_FRACTION)
+    ingest(scenario, store, logs, matches=4, seed=seed)
+    prior = current_prior(scenario, store, seed=seed)
+    plan = plan_from_prior(prior, candidates=candidates, seed=seed, max_trials=MAX_TRIALS, draws=draws,
+                           target_fraction=TARGET_FRACTION)
     store.close()
     # the realised run: the policy from the same prior, observing the stand-in truth
     fell = truth["fell"]
@@ -108,16 +109,16 @@ def one_run(scenario, sweep_path: Path, profile: str, seed: int, candidates: np.
     target = draw_targets(np.where(fell, np.inf, objective)[None], margin[None], TARGET_FRACTION, None)
     beliefs = beliefs_from_prior(prior, candidates, seed)
     realised = run_policy(
-        np.where(fell, np.inf, objective)[None], margin[None], target, beliefs["objective_belief"],
-        beliefs["margin_belief"], max_trials=MAX_TRIALS, objective_noise_sd=0.0, margin_noise_sd=0.0, rng=seed,
+        np.where(fell, np.inf, objective)[None], margin[None], target, beliefs.objective,
+        beliefs.margin, max_trials=MAX_TRIALS, objective_noise_sd=0.0, margin_noise_sd=0.0, rng=seed,
     )
     reached = int(realised.trials_to_target[0])
-    p80 = plan.with_prior["p80"]
+    p80 = plan.with_prior.p80
     realised_value = reached if reached <= MAX_TRIALS else None
     covered = p80 is None or (realised_value is not None and realised_value <= p80)
     return {
-        "profile": profile, "seed": seed, "first_trials": n_first, "p80": p80, "cold_p80": plan.cold_start["p80"],
-        "reached_fraction": plan.with_prior["reached_fraction"], "realised": realised_value,
+        "profile": profile, "seed": seed, "first_trials": n_first, "p80": p80, "cold_p80": plan.cold_start.p80,
+        "reached_fraction": plan.with_prior.reached_fraction, "realised": realised_value,
         "realised_falls": int(realised.falls[0]), "covered": bool(covered),
         "both_beyond_T": p80 is None and realised_value is None,
     }

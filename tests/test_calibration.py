@@ -4,7 +4,10 @@ Outside truths used here:
 - an analytic simulator whose features are a known linear function of the physics: least squares on
   exact data has the true physics as its unique minimiser (Gauss-Markov / normal equations), and a
   quantity no feature depends on leaves the likelihood flat, so it cannot be identified;
-- the stand-in robot (DESIGN.md section 6) with a profile whose physics is set by us, so the truth is known.
+- the stand-in robot (DESIGN.md section 6) with a profile whose physics is set by us, so the truth is known;
+  its logs go through ingest into a store made in the test, and ``gapgauge.calibrate(scenario, store)``
+  works from there;
+- the standard library's strict JSON parser for the stored result.
 """
 
 from __future__ import annotations

@@ -1,4 +1,5 @@
-"""Feature shift (compare/shift.py): figures against scipy, verdicts by repetition and on built cases."""
+"""Feature shift (compare/shift/ and app/shift.py): figures against closed forms and scipy, intervals and
+verdicts by repetition and on built cases, the typed result's round trip, the job on a real store."""
 
 from __future__ import annotations
 
@@ -11,18 +12,25 @@ import numpy as np
 import pytest
 from scipy import stats
 
+from gapgauge.app.shift import assess_shift
 from gapgauge.compare.shift import (
     VERDICTS,
+    FeatureShift,
+    JointShift,
+    RankAgreement,
+    ShiftReport,
     VerdictInputs,
     decide_verdict,
     feature_shift,
-    ks_statistic,
     shift_from_arrays,
     t_test_power,
     trials_to_decide,
-    wasserstein_1d,
 )
-from gapgauge.scenario import ShiftSettings
+from gapgauge.compare.shift.statistics import paired_bias_intervals
+from gapgauge.errors import ModelError, StoreError
+from gapgauge.records import RolloutBatch, TrialRecord
+from gapgauge.scenario import ShiftSettings, load_scenario
+from gapgauge.store import Store
 
 SETTINGS = ShiftSettings(level=0.05, residual_limit=2.0, offset_limit=1.0, rank_threshold=0.4,
                          bootstrap=1000, permutations=200)
@@ -39,29 +47,20 @@ def _matched(rng: np.random.Generator, n: int, shift_sd: float = 0.0) -> tuple[n
     return hardware, sims
 
 
-def test_wasserstein_equals_scipy_wasserstein_distance():
-    # Reference: scipy.stats.wasserstein_distance (W1 between empirical distributions), with ties.
-    rng = np.random.default_rng(1)
-    u = np.round(rng.normal(size=7), 1)
-    v = np.round(rng.normal(0.5, 2.0, size=40), 1)
-    assert wasserstein_1d(u, v) == pytest.approx(stats.wasserstein_distance(u, v), rel=1e-12)
+# ---- per-feature figures ----------------------------------------------------------------------
 
 
-def test_ks_statistic_equals_scipy_ks_2samp():
-    # Reference: scipy.stats.ks_2samp statistic, with ties.
-    rng = np.random.default_rng(2)
-    u = np.round(rng.normal(size=6), 1)
-    v = np.round(rng.normal(0.3, 1.0, size=50), 1)
-    assert ks_statistic(u, v) == pytest.approx(stats.ks_2samp(u, v).statistic, rel=1e-12)
-
-
-def test_feature_figures_compare_hardware_with_the_pooled_matched_simulations():
-    # The feature's Wasserstein and KS figures are scipy's on (hardware values, all matched simulations).
-    hardware, sims = _matched(np.random.default_rng(3), 5, shift_sd=0.5)
+def test_wasserstein_and_ks_of_a_translated_simulation_are_the_translation_and_one_over_n():
+    # Each simulated column is the hardware values (0, 1, ..., 5) permuted and moved by c = 0.3, so the
+    # pooled simulations are the hardware distribution translated by c. Closed forms: W1 between a
+    # distribution and its translate is |c| (W1 = integral of |F^-1 - G^-1|, Vallender 1973); with c
+    # below the spacing 1 the distribution functions differ by 1/n on every step, so KS = 1/6.
+    n, c = 6, 0.3
+    hardware = np.arange(n, dtype=float)
+    sims = np.stack([np.roll(hardware, k) for k in range(K)], axis=1) + c
     result = feature_shift("x", hardware, sims, SETTINGS, np.random.default_rng(0))
-    assert result.wasserstein == pytest.approx(stats.wasserstein_distance(hardware, sims.ravel()), rel=1e-12)
-    assert result.ks_statistic == pytest.approx(stats.ks_2samp(hardware, sims.ravel()).statistic, rel=1e-12)
-    assert result.ks_p_value == pytest.approx(stats.ks_2samp(hardware, sims.ravel()).pvalue, rel=1e-9)
+    assert result.wasserstein == pytest.approx(c, rel=1e-12)
+    assert result.ks_statistic == pytest.approx(1 / n, rel=1e-12)
 
 
 def test_residuals_and_bias_follow_their_definitions():
@@ -72,10 +71,44 @@ def test_residuals_and_bias_follow_their_definitions():
     expected = (hardware - sims.mean(axis=1)) / sims.std(axis=1, ddof=1)
     np.testing.assert_allclose(result.residuals, expected, rtol=1e-12)
     assert result.bias == pytest.approx(float(np.mean(hardware - sims.mean(axis=1))), rel=1e-12)
-    # the Student t interval of the bias: scipy.stats.t.interval on the paired differences
+
+
+def test_t_interval_of_the_bias_is_the_textbook_formula():
+    # Student t interval of a mean: d_bar +- t_{1-level/2, n-1} s / sqrt(n) (e.g. Casella and Berger
+    # 2002, example 9.2.13), with the quantile from scipy.stats.t.ppf.
+    hardware, sims = _matched(np.random.default_rng(5), 5, shift_sd=0.4)
+    result = feature_shift("x", hardware, sims, SETTINGS, np.random.default_rng(0))
     d = hardware - sims.mean(axis=1)
-    t_ref = stats.t.interval(0.95, len(d) - 1, loc=d.mean(), scale=stats.sem(d))
-    np.testing.assert_allclose(result.bias_interval_t, t_ref, rtol=1e-10)
+    half = stats.t.ppf(0.975, d.size - 1) * d.std(ddof=1) / math.sqrt(d.size)
+    np.testing.assert_allclose(result.bias_interval_t, (d.mean() - half, d.mean() + half), rtol=1e-10)
+
+
+def test_paired_bias_t_interval_covers_the_true_bias_at_the_nominal_rate():
+    # For a normal sample the t interval covers the mean with probability exactly 1 - level (Student
+    # 1908). 400 samples of 6 differences from N(0.7, 1.3^2): the count covering 0.7 must lie in the
+    # central 99% of Binomial(400, 0.95) (scipy.stats.binom.interval).
+    rng = np.random.default_rng(60)
+    repetitions, truth = 400, 0.7
+    covered = 0
+    for _ in range(repetitions):
+        interval = paired_bias_intervals(rng.normal(truth, 1.3, size=6), 0.05, 200, rng).t
+        covered += interval[0] < truth < interval[1]
+    low, high = stats.binom.interval(0.99, repetitions, 0.95)
+    assert low <= covered <= high, covered
+
+
+def test_paired_bias_bootstrap_interval_covers_the_true_bias_at_about_the_nominal_rate_with_40_trials():
+    # The percentile bootstrap interval is first-order accurate (Efron and Tibshirani 1993, ch. 13-14):
+    # with 40 normal differences its coverage of the mean is a little under 1 - level (by the normal
+    # approximation, P(|T_39| < 1.96 sqrt(39/40)) = 0.94). 1000 repetitions (binomial sd 0.008);
+    # accepted: within 0.95 +- 0.04. A wrong level (90%: about 0.89) or scale falls outside.
+    rng = np.random.default_rng(61)
+    repetitions, truth = 1000, -0.2
+    covered = 0
+    for _ in range(repetitions):
+        interval = paired_bias_intervals(rng.normal(truth, 0.5, size=40), 0.05, 1000, rng).bootstrap
+        covered += interval[0] < truth < interval[1]
+    assert abs(covered / repetitions - 0.95) <= 0.04, covered
 
 
 def test_rank_agreement_equals_scipy_kendall_and_spearman():
@@ -93,6 +126,9 @@ def test_link_equals_scipy_linregress_of_hardware_on_simulated_means():
     fit = stats.linregress(sims.mean(axis=1), hardware)
     assert result.link.slope == pytest.approx(fit.slope, rel=1e-10)
     assert result.link.intercept == pytest.approx(fit.intercept, rel=1e-10)
+
+
+# ---- verdicts by repetition -------------------------------------------------------------------
 
 
 @pytest.mark.slow
@@ -236,8 +272,11 @@ def test_feature_without_simulated_spread_gets_a_verdict_without_warnings():
     assert differ.verdict == "does_not_carry_over"
 
 
-def test_report_json_carries_every_section_and_is_reproducible_from_its_seed():
-    rng = np.random.default_rng(40)
+# ---- the typed result ---------------------------------------------------------------------------
+
+
+def _three_features(seed: int = 40) -> tuple[np.ndarray, np.ndarray]:
+    rng = np.random.default_rng(seed)
     n, p = 5, 3
     location = rng.normal(0, 3, size=(n, 1, p))
     sims = location + rng.standard_normal((n, K, p))
@@ -245,75 +284,111 @@ def test_report_json_carries_every_section_and_is_reproducible_from_its_seed():
     sims[:, :, 2] = 0.0
     hardware[:, 2] = 0.0
     sims[1, 3, 0] = np.nan  # a diverged simulation
+    return hardware, sims
+
+
+def test_report_carries_every_section_and_is_reproducible_from_its_seed():
+    hardware, sims = _three_features()
     names = ["a", "b", "fell"]
     with warnings.catch_warnings():
         warnings.simplefilter("error")
         report = shift_from_arrays(hardware, sims, names, SETTINGS, 7, hardware_objective=hardware[:, 0],
                                    simulated_objective=sims[:, :, 0])
-    data = json.loads(json.dumps(report.as_dict(), allow_nan=False))
-    assert [f["name"] for f in data["features"]] == names
-    assert all(f["verdict"] in VERDICTS for f in data["features"])
-    assert {"mmd_p_value", "classifier_auc", "classifier_p_value", "mmd2"} <= set(data["joint"])
-    assert data["joint"]["features"] == ["a", "b"]  # the zero-spread feature is left out of the joint tests
-    assert {"level", "residual_limit", "offset_limit", "rank_threshold"} <= set(data["settings"])
-    assert data["objective"]["rank"]["kendall"] is not None
-    assert data["seed"] == 7
+    assert [f.name for f in report.features] == names
+    assert all(f.verdict in VERDICTS for f in report.features)
+    assert report.joint.features == ["a", "b"]  # the zero-spread feature is left out of the joint tests
+    assert 0 < report.joint.mmd_p_value <= 1 and 0 < report.joint.classifier_p_value <= 1
+    assert report.settings.level == SETTINGS.level and report.settings.offset_limit == SETTINGS.offset_limit
+    assert math.isfinite(report.objective.rank.kendall)
+    assert report.seed == 7
     again = shift_from_arrays(hardware, sims, names, SETTINGS, 7, hardware_objective=hardware[:, 0],
                               simulated_objective=sims[:, :, 0])
-    assert json.dumps(again.as_dict()) == json.dumps(report.as_dict())
+    assert again.to_json() == report.to_json()
 
 
-def test_assess_shift_reads_trials_and_matches_from_a_store_and_writes_json_and_plots(tmp_path):
-    # Store contract (DEVELOPERS.md): trials(hash) -> TrialRecord list; matches(id) -> RolloutBatch of K rows.
-    import gapgauge
-    from gapgauge.records import RolloutBatch, TrialRecord
+def test_report_round_trips_through_strict_json_with_its_arrays():
+    hardware, sims = _three_features(41)
+    report = shift_from_arrays(hardware, sims, ["a", "b", "fell"], SETTINGS, 3, trial_ids=[4, 5, 6, 7, 8])
+    text = json.dumps(report.to_dict(), allow_nan=False)  # strict JSON: no NaN literal
+    back = ShiftReport.from_dict(json.loads(text))
+    assert isinstance(back.joint, JointShift) and isinstance(back.features[0], FeatureShift)
+    assert isinstance(back.features[0].rank, RankAgreement)
+    assert isinstance(back.features[0].bias_test_interval, tuple)
+    assert back.objective is None and back.trial_ids == [4, 5, 6, 7, 8]
+    np.testing.assert_array_equal(back.hardware_values, hardware)
+    np.testing.assert_array_equal(back.simulated_values, sims)  # NaN in the same places
+    assert back.simulated_values.shape == (5, K, 3)
+    assert back.to_json() == report.to_json()
 
-    scenario = gapgauge.load_scenario(SCENARIO_PATH)
+
+# ---- the job on a real store ----------------------------------------------------------------------
+
+
+def _store_with_trials(path: Path, scenario, rng: np.random.Generator, trials: int = 4, k: int = 16) -> Store:
+    """A store holding ``trials`` hardware trials, each with ``k`` matched simulations (the last diverged)."""
     names = list(scenario.features.names)
-    rng = np.random.default_rng(50)
+    physics_names = tuple(r.name for r in scenario.physics)
+    store = Store(path)
+    for i in range(trials):
+        run_id = store.start_run("match", scenario, seed=i, design="match", planned=k, nominal=False)
+        location = rng.normal(5.0, 2.0, size=len(names))
+        features = {name: location[j] + rng.standard_normal(k) for j, name in enumerate(names)}
+        features["fell"] = np.zeros(k)
+        status = np.array(["ok"] * (k - 1) + ["diverged"])
+        for name in names:  # a diverged rollout has no features (records.RolloutBatch)
+            features[name][-1] = np.nan
+        batch = RolloutBatch(np.arange(k), np.zeros((k, len(scenario.parameters))), np.ones((k, len(physics_names))),
+                             physics_names, status, np.array([""] * (k - 1) + ["nan state"]),
+                             rng.normal(size=k), features)
+        store.write_rollouts(run_id, batch)
+        hardware = {name: float(location[j] + rng.standard_normal()) for j, name in enumerate(names)}
+        hardware["fell"] = 0.0
+        trial_id, _ = store.add_trial(TrialRecord(
+            scenario_hash=scenario.content_hash, source_path=f"t{i}.csv", sha256=f"{i:064x}",
+            params={p.name: 0.0 for p in scenario.parameters}, robot_id="r", recorded_at="", outcome="stood",
+            notes="", synthetic=True, features=hardware, objective=float(rng.normal()),
+        ))
+        store.link_matches(trial_id, run_id, range(k))
+    return store
 
-    class MemoryStore:
-        def __init__(self):
-            self.batches = {}
-            self.records = []
-            for i in range(4):
-                location = rng.normal(5.0, 2.0, size=len(names))
-                sims = {n: location[j] + rng.standard_normal(16) for j, n in enumerate(names)}
-                sims["fell"] = np.zeros(16)
-                status = np.array(["ok"] * 15 + ["diverged"])
-                self.batches[i] = RolloutBatch(np.arange(16), np.zeros((16, 1)), np.zeros((16, 1)),
-                                               ("friction",), status, np.array([""] * 16),
-                                               rng.normal(size=16), sims)
-                hw = {n: float(location[j] + rng.standard_normal()) for j, n in enumerate(names)}
-                hw["fell"] = 0.0
-                self.records.append(TrialRecord(scenario.content_hash, f"t{i}.csv", str(i), {}, "r", "",
-                                                "stood", "", True, hw, float(rng.normal()), id=i))
 
-        def trials(self, scenario_hash):
-            return self.records if scenario_hash == scenario.content_hash else []
-
-        def matches(self, trial_id):
-            return self.batches[trial_id]
-
-    report = gapgauge.assess_shift(scenario, MemoryStore(), seed=1, json_path=tmp_path / "s.json",
-                                   plots_dir=tmp_path / "plots")
+def test_assess_shift_reads_a_store_saves_the_result_and_writes_json_and_plots(tmp_path):
+    # Store contract (DEVELOPERS.md): trials(hash) -> TrialRecord list; matches(id) -> RolloutBatch of K rows.
+    scenario = load_scenario(SCENARIO_PATH)
+    names = list(scenario.features.names)
+    store = _store_with_trials(tmp_path / "store.sqlite", scenario, np.random.default_rng(50))
+    report = assess_shift(scenario, store, seed=1, json_path=tmp_path / "s.json", plots_dir=tmp_path / "plots")
     data = json.loads((tmp_path / "s.json").read_text())
-    assert [f["name"] for f in data["features"]] == names
-    assert data["trial_ids"] == [0, 1, 2, 3]
-    assert any("diverged" in note for note in data["notes"])
+    assert data["kind"] == "shift" and [f["name"] for f in data["features"]] == names
+    assert report.trial_ids == [t.id for t in store.trials(scenario.content_hash)]
+    assert report.simulated_values.shape == (4, 15, len(names))  # the diverged rows are left out
+    assert any("diverged" in note for note in report.notes)
     assert report.feature("fell").verdict == "carries_over"
+    assert report.scenario.hash == scenario.content_hash
     assert all((tmp_path / "plots" / f"shift_{n}.png").read_bytes()[:4] == b"\x89PNG" for n in names)
+    stored = store.load_result(ShiftReport, scenario.content_hash)
+    assert stored is not None and stored.to_json() == report.to_json()
+    store.close()
 
 
-def test_assess_shift_without_trials_names_the_ingest_command():
-    import gapgauge
-    from gapgauge.errors import ModelError
+def test_assess_shift_takes_paths_for_the_scenario_and_the_store(tmp_path):
+    scenario = load_scenario(SCENARIO_PATH)
+    _store_with_trials(tmp_path / "store.sqlite", scenario, np.random.default_rng(51), trials=3).close()
+    report = assess_shift(SCENARIO_PATH, tmp_path / "store.sqlite", seed=2)
+    assert report.seed == 2 and len(report.trial_ids) == 3
 
-    scenario = gapgauge.load_scenario(SCENARIO_PATH)
 
-    class EmptyStore:
-        def trials(self, scenario_hash):
-            return []
+def test_assess_shift_without_trials_says_to_ingest_them(tmp_path):
+    Store(tmp_path / "empty.sqlite").close()
+    with pytest.raises(ModelError, match="ingest"):
+        assess_shift(SCENARIO_PATH, tmp_path / "empty.sqlite")
 
-    with pytest.raises(ModelError, match="gapgauge ingest"):
-        gapgauge.assess_shift(scenario, EmptyStore())
+
+def test_assess_shift_on_a_missing_store_is_a_store_error(tmp_path):
+    with pytest.raises(StoreError, match="store not found"):
+        assess_shift(SCENARIO_PATH, tmp_path / "none.sqlite")
+
+
+def test_assess_shift_refuses_a_level_outside_0_to_half_naming_the_argument(tmp_path):
+    with pytest.raises(ModelError, match="level argument"):
+        assess_shift(SCENARIO_PATH, tmp_path / "none.sqlite", level=0.7)

@@ -1,6 +1,5 @@
 """End to end on the stand-in robot: stand-in logs -> ingest (16 matches) -> assess_shift / gapgauge shift.
 
-Needs the store, ingest and stand-in of the other modules; skipped until gapgauge.store.Store exists.
 The sweep is not built: the shift assessment reads only the trials and their matched simulations.
 """
 
@@ -10,8 +9,14 @@ import json
 from pathlib import Path
 
 import pytest
+from click.testing import CliRunner
 
-import gapgauge
+from gapgauge.app.ingest import ingest
+from gapgauge.app.shift import assess_shift
+from gapgauge.cli import main
+from gapgauge.scenario import load_scenario
+from gapgauge.sim.standin import run_standin
+from gapgauge.store import Store
 
 pytestmark = pytest.mark.slow
 
@@ -21,15 +26,11 @@ PROFILES = ROOT / "scenarios" / "standin"
 
 
 def _store_with_trials(tmp_path: Path, profile: str):
-    store_module = pytest.importorskip("gapgauge.store.db", reason="the store (store/db.py) has not landed")
-    from gapgauge.sim.standin import run_standin
-    from gapgauge.app.ingest import ingest
-
-    scenario = gapgauge.load_scenario(SCENARIO)
+    scenario = load_scenario(SCENARIO)
     logs = run_standin(scenario, PROFILES / f"{profile}.toml", design=5, out_dir=tmp_path / "logs", seed=1)
     store_path = tmp_path / "store.sqlite"
-    store = store_module.Store(store_path)
-    ingest(scenario, store, logs, matches=16, seed=0, progress=False)
+    store = Store(store_path)
+    ingest(scenario, store, logs, matches=16, seed=0)
     return scenario, store, store_path
 
 
@@ -46,7 +47,7 @@ def heavy_case(tmp_path_factory):
 def test_close_standin_has_no_feature_that_does_not_carry_over(close_case):
     # close.toml runs the scenario's nominal physics with small sensor noise: the simulation is the truth.
     scenario, store, _ = close_case
-    report = gapgauge.assess_shift(scenario, store, seed=0)
+    report = assess_shift(scenario, store, seed=0)
     bad = [f.name for f in report.features if f.verdict == "does_not_carry_over"]
     assert not bad, [(f.name, f.reason) for f in report.features if f.verdict == "does_not_carry_over"]
 
@@ -55,7 +56,7 @@ def test_heavy_slippery_standin_flags_the_joint_torque(tmp_path, heavy_case):
     # Physics: the trunk is 15% heavier than nominal (outside the randomised 0.9-1.1), so the torque that
     # holds the body up and stops the push grows with the mass; the peak joint torque must not carry over.
     scenario, store, _ = heavy_case
-    report = gapgauge.assess_shift(scenario, store, seed=0)
+    report = assess_shift(scenario, store, seed=0)
     torque = report.feature("peak_joint_torque")
     assert torque.verdict != "carries_over", torque.reason
 
@@ -64,7 +65,7 @@ def test_heavy_slippery_standin_flags_the_work_that_grows_with_the_mass(heavy_ca
     # Physics: positive work of the joints (lifting and stopping the trunk) scales with the mass moved; a
     # trunk 15% heavier than nominal, outside the randomised 0.9-1.1, must not read as carrying over.
     scenario, store, _ = heavy_case
-    report = gapgauge.assess_shift(scenario, store, seed=0)
+    report = assess_shift(scenario, store, seed=0)
     work = report.feature("positive_work")
     assert work.verdict != "carries_over", work.reason
 
@@ -76,17 +77,13 @@ def test_heavy_slippery_standin_leaves_the_kinematic_features_unflagged(heavy_ca
     # inside the simulated spread; friction 0.6 changes nothing while the feet do not slip (no fall at
     # these safe parameter sets). None of them may be called "does not carry over".
     scenario, store, _ = heavy_case
-    report = gapgauge.assess_shift(scenario, store, seed=0)
+    report = assess_shift(scenario, store, seed=0)
     for name in ("peak_com_excursion", "margin_of_stability", "recovery_time"):
         feature = report.feature(name)
         assert feature.verdict != "does_not_carry_over", (name, feature.reason)
 
 
 def test_shift_command_prints_verdicts_and_writes_json_and_plots(tmp_path, close_case):
-    from click.testing import CliRunner
-
-    from gapgauge.cli import main
-
     _, _, store_path = close_case
     json_path, plots = tmp_path / "shift.json", tmp_path / "plots"
     result = CliRunner().invoke(main, ["shift", str(SCENARIO), "--store", str(store_path), "--json",
@@ -94,15 +91,11 @@ def test_shift_command_prints_verdicts_and_writes_json_and_plots(tmp_path, close
     assert result.exit_code == 0, result.output
     assert "level 0.05" in result.output
     data = json.loads(json_path.read_text())
-    assert data["seed"] == 3 and len(data["features"]) == len(gapgauge.load_scenario(SCENARIO).features.names)
+    assert data["seed"] == 3 and len(data["features"]) == len(load_scenario(SCENARIO).features.names)
     assert all((plots / f"shift_{f['name']}.png").read_bytes()[:4] == b"\x89PNG" for f in data["features"])
 
 
 def test_shift_command_on_a_missing_store_exits_2(tmp_path):
-    from click.testing import CliRunner
-
-    from gapgauge.cli import main
-
     result = CliRunner().invoke(main, ["shift", str(SCENARIO), "--store", str(tmp_path / "none.sqlite")])
     assert result.exit_code == 2
     assert "store not found" in result.output

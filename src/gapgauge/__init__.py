@@ -26,7 +26,7 @@ _LAZY = {
     "assess_shift": "gapgauge.app.shift:assess_shift",
     "fit_prior": "gapgauge.compare.prior:fit_prior",
     "propose": "gapgauge.compare.propose:propose",
-    "plan_budget": "gapgauge.compare.budget:plan_budget",
+    "plan_budget": "gapgauge.app.budget:plan_budget",
     "calibrate": "gapgauge.app.calibrate:calibrate",
     "write_report": "gapgauge.app.report:write_report",
     "run_demo": "gapgauge.app.demo:run_demo",

@@ -202,8 +202,8 @@ def calibrate(
     estimates = _estimates(scenario, names, low, high, u_best, laplace, identifiable_fraction, problem.m)
     after_all = np.concatenate([sim_best[None], after_sims], axis=0)  # (K x n x f)
     verdict_seed = int(np.random.default_rng([seed, 4]).integers(2**31))
-    shift_before = shift_at_physics(problem, problem.residuals(nominal_sim[None, :, keep])[0],
-                                  problem.nominal, before_sims, verdict_seed)
+    r_nominal = problem.residuals(nominal_sim[None, :, keep])[0]
+    shift_before = shift_at_physics(problem, r_nominal, problem.nominal, before_sims, verdict_seed)
     shift_after = shift_at_physics(problem, r_best, best_physics, after_all, verdict_seed)
     return CalibrationResult(
         scenario_name=scenario.name,

@@ -1,0 +1,137 @@
+"""The prior job: read the sweep and the trials from the store once, fit the multi-fidelity prior and the
+fall model (:func:`gapgauge.compare.prior.fit_prior`), store the result with its models.
+
+The stored prior is one row of kind ``"prior"``: the :class:`~gapgauge.compare.prior.PriorFit` JSON
+(so ``store.load_result(PriorFit, hash)`` reads it without the models) plus the models' parameters
+under ``"models"`` and their npz arrays (:func:`load_prior` rebuilds them without refitting).
+
+When the sweep has not changed since the stored fit (same :attr:`PriorFit.simulation_key`), its
+simulation levels are reused and only the hardware levels refitted: a new trial costs seconds, not a
+refit of every rollout.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+from ..compare.prior import DEFAULT_MAX_INDUCING, PriorData, PriorFit, prior_data
+from ..compare.prior import fit_prior as fit_prior_data
+from ..errors import ModelError, StoreError
+from ..progress import Progress
+from ..scenario import Scenario
+from ..store import Store
+from .common import as_scenario, open_store
+
+
+def read_prior_data(scenario: Scenario, store: Store) -> PriorData:
+    """The arrays of :func:`~gapgauge.compare.prior.prior_data` from an open ``store``.
+
+    Raises:
+        ModelError: no sweep for the scenario yet, or no rollout that stood.
+    """
+    h = scenario.content_hash
+    sweep = store.rollouts(h, kinds=("sweep",)) if store.runs(h, kind="sweep") else None
+    return prior_data(scenario, sweep, list(store.trials(h)))
+
+
+def _stored(scenario: Scenario, store: Store) -> PriorFit | None:
+    """The stored prior with its models, or None when there is none or it cannot be restored (an older
+    format, other parameters): the caller then fits a new one."""
+    loaded = store.load_model(PriorFit.kind, scenario.content_hash)
+    if loaded is None:
+        return None
+    try:
+        return PriorFit.from_state(loaded[0], loaded[1] or {}, scenario)
+    except (ModelError, StoreError, KeyError, TypeError, ValueError):
+        return None
+
+
+def save_prior(store: Store, fit: PriorFit) -> int:
+    """Store ``fit`` and its models as one row of kind ``"prior"``; sets and returns ``fit.model_id``."""
+    params, arrays = fit.to_state()
+    fit.model_id = store.save_model(PriorFit.kind, fit.scenario_hash, params, arrays)
+    return fit.model_id
+
+
+def load_prior(scenario: Scenario | str | Path, store: Store | str | Path) -> PriorFit:
+    """The last prior stored for ``scenario``, models rebuilt from their JSON and npz without refitting.
+
+    Raises:
+        ModelError: none stored yet, or stored for other parameters (fit one with ``fit_prior``).
+        StoreError: the stored prior is of an older format (fit it again).
+    """
+    scenario = as_scenario(scenario)
+    with open_store(store) as opened:
+        loaded = opened.load_model(PriorFit.kind, scenario.content_hash)
+    if loaded is None:
+        raise ModelError(f"no fitted prior for scenario {scenario.name!r} in the store; fit one first "
+                         f"(gapgauge prior {scenario.path})")
+    return PriorFit.from_state(loaded[0], loaded[1] or {}, scenario)
+
+
+def fit_prior(
+    scenario: Scenario | str | Path,
+    store: Store | str | Path,
+    *,
+    seed: int = 0,
+    max_inducing: int = DEFAULT_MAX_INDUCING,
+    progress: Progress | None = None,
+) -> PriorFit:
+    """Fit the prior of ``scenario`` from ``store`` and store it there.
+
+    The simulation levels of the stored prior are reused when it was fitted on the same sweep rows
+    with the same ``seed`` and ``max_inducing`` (the result is then the one a full fit gives).
+
+    Args:
+        scenario: a Scenario or the path of its TOML.
+        store: an open :class:`~gapgauge.store.Store` (left open) or the path of its file.
+        seed: seeds the subsample, the inducing points and the optimiser restarts; stored.
+        max_inducing: inducing points of a sparse simulation level (the sparse GP takes over above
+            ``gapgauge.compare.multifidelity.SPARSE_THRESHOLD`` = 500 points).
+        progress: called as ``progress(stage, step, 3)`` (see :mod:`gapgauge.progress`).
+
+    Raises:
+        ModelError: no sweep for the scenario yet, no rollout that stood, or an argument out of range.
+    """
+    scenario = as_scenario(scenario)
+    with open_store(store) as opened:
+        data = read_prior_data(scenario, opened)
+        stored = _stored(scenario, opened)
+        if stored is not None and (stored.seed != seed or stored.max_inducing != max_inducing):
+            stored = None
+        fit = fit_prior_data(scenario, data, seed=seed, max_inducing=max_inducing, simulation_level=stored,
+                             progress=progress)
+        save_prior(opened, fit)
+    return fit
+
+
+def current_prior(
+    scenario: Scenario | str | Path,
+    store: Store | str | Path,
+    *,
+    seed: int = 0,
+    progress: Progress | None = None,
+) -> PriorFit:
+    """The stored prior if it was fitted on the store's current sweep and trials; else a new fit (stored),
+    which keeps the stored simulation levels (and their seed) when only the trials changed.
+
+    ``seed`` seeds a fit from scratch (no stored prior, or the sweep changed).
+
+    Raises:
+        ModelError: as :func:`fit_prior`.
+    """
+    scenario = as_scenario(scenario)
+    with open_store(store) as opened:
+        data = read_prior_data(scenario, opened)
+        stored = _stored(scenario, opened)
+        max_inducing = DEFAULT_MAX_INDUCING if stored is None else stored.max_inducing
+        if (stored is not None and stored.simulation_key == data.simulation_key(max_inducing)
+                and stored.hardware_key == data.hardware_key()):
+            return stored
+        fit = fit_prior_data(scenario, data, seed=seed, max_inducing=max_inducing, simulation_level=stored,
+                             progress=progress)
+        save_prior(opened, fit)
+    return fit
+
+
+__all__ = ["current_prior", "fit_prior", "load_prior", "read_prior_data", "save_prior"]
