@@ -71,7 +71,7 @@ def test_acquisition_optimiser_reaches_the_hartmann6_minimum() -> None:
 
 
 def test_no_feasible_candidate_is_a_model_error_that_says_what_to_do() -> None:
-    with pytest.raises(ModelError, match="max-fall-risk"):
+    with pytest.raises(ModelError, match="raise max_fall_risk"):
         maximise_acquisition(_known(branin), np.array([[-5.0, 10.0], [0.0, 15.0]]), best=None,
                              fall_probability=lambda X: np.full(X.shape[0], 0.5), max_fall_risk=0.05)
 

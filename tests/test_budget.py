@@ -202,8 +202,8 @@ def test_budget_job_on_a_small_real_store_stores_the_plan_it_returns(tmp_path):
     plan = plan_budget(path, store_path, draws=16, max_trials=6, progress=lambda *call: calls.append(call))
     assert plan.draws == 16 and len(plan.curve) == 6
     assert plan.sentence.startswith("Book ") and plan.sentence.endswith("without it.")
-    # one call per simulated trial of each arm, ending at the total
-    assert [c for c in calls if c[1] == c[2]] == [
+    # the budget's own stages (the prior's fit reports too): each arm's simulated trials, ending at the total
+    assert [c for c in calls if c[0].startswith("budget:") and c[1] == c[2]] == [
         ("budget: simulated trials, with the prior", 6, 6), ("budget: simulated trials, cold start", 6, 6)
     ]
     with Store(store_path, create=False) as store:

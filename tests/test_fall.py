@@ -3,12 +3,14 @@
 from __future__ import annotations
 
 import numpy as np
+import pytest
 from scipy.integrate import quad
 from scipy.special import ndtr
 from scipy.stats import norm
 from sklearn.metrics import roc_curve
 
 from gapgauge.compare.fall import FallModel, youden_threshold
+from test_gp import _through_json_and_npz
 
 
 def test_youden_threshold_reaches_the_best_j_of_scikit_learns_roc_curve() -> None:
@@ -23,15 +25,9 @@ def test_youden_threshold_reaches_the_best_j_of_scikit_learns_roc_curve() -> Non
     best_j = np.max(tpr - fpr)
     called = margin < cut
     j = called[outcome].mean() - called[~outcome].mean()
-    assert j == pytest_approx(best_j)
+    assert j == pytest.approx(best_j, abs=1e-12)
     # the cut lies between the two clusters, below Hof's 0 (a body may dip below 0 and recover)
     assert -0.3 < cut < 0.02
-
-
-def pytest_approx(value: float):
-    import pytest
-
-    return pytest.approx(value, abs=1e-12)
 
 
 def test_youden_threshold_is_hofs_zero_when_only_one_outcome_occurs() -> None:
@@ -54,8 +50,27 @@ def test_fall_probability_is_the_gaussian_tail_below_the_threshold() -> None:
     a, b = model.calibration_
     expected = [quad(lambda f, m=m, s=s: ndtr(a + b * (model.threshold_ - f)) * norm.pdf(f, m, s),
                      m - 12 * s, m + 12 * s, points=[model.threshold_])[0] for m, s in zip(mean, sd, strict=True)]
-    assert np.allclose(model.fall_probability(Xq), expected, atol=1e-7)
+    proba = model.predict_proba(Xq)
+    # scikit-learn's classifier convention: one column per class of classes_ (stood, fell), rows sum to 1
+    assert model.classes_.tolist() == [False, True]
+    np.testing.assert_allclose(proba.sum(axis=1), 1.0, rtol=0, atol=1e-12)
+    assert np.allclose(proba[:, 1], expected, atol=1e-7)
     p = model.fall_probability(Xq)
     # with no hardware trial the discrepancy prior keeps doubt (and the floor caps how deep a fall
     # reads), but each end lies clearly on its own side
     assert p[0] < 0.2 and p[1] > 0.6
+
+
+def test_a_reloaded_fall_model_gives_the_same_probabilities_margins_and_likelihood() -> None:
+    # through JSON text and an npz file, as the store keeps it (no pickle): the same numbers
+    rng = np.random.default_rng(1)
+    X = rng.random((120, 2))
+    margin = 0.1 - 0.3 * X[:, 0] + rng.normal(0, 0.01, 120)
+    X_hw = np.array([[0.2, 0.4], [0.7, 0.6]])
+    model = FallModel(random_state=0).fit(X, margin, X_hw, 0.1 - 0.3 * X_hw[:, 0], fell_low=margin < -0.05)
+    rebuilt = FallModel.from_state(*_through_json_and_npz(*model.to_state()))
+    Xq = rng.random((7, 2))
+    np.testing.assert_array_equal(rebuilt.predict_proba(Xq), model.predict_proba(Xq))
+    for a, b in zip(rebuilt.predict(Xq, return_cov=True), model.predict(Xq, return_cov=True), strict=True):
+        np.testing.assert_array_equal(a, b)
+    assert rebuilt.log_marginal_likelihood() == model.log_marginal_likelihood()

@@ -3,6 +3,9 @@ sklearn GPR is the reference for any exact-GP code of ours, predictions equal to
 
 from __future__ import annotations
 
+import io
+import json
+
 import numpy as np
 import pytest
 from scipy.optimize import approx_fprime
@@ -94,9 +97,54 @@ def test_exact_gp_posterior_covariance_equals_sklearn_gpr() -> None:
     reference = GaussianProcessRegressor(ConstantKernel(VARIANCE) * Matern(length_scale=LENGTH_SCALES, nu=2.5),
                                          optimizer=None, alpha=NOISE, normalize_y=True).fit(X, y)
     gp = ExactGP(Matern52(VARIANCE, LENGTH_SCALES), NOISE, normalize_y=True, optimize=False).fit(X, y)
-    cov = reference.predict(X_test, return_cov=True)[1]
-    np.testing.assert_allclose(gp.posterior_covariance(X_test), cov, atol=1e-8)
-    np.testing.assert_allclose(gp.posterior_covariance(X_test[:5], X_test[5:]), cov[:5, 5:], atol=1e-8)
+    mean_ref, cov_ref = reference.predict(X_test, return_cov=True)
+    mean, cov = gp.predict(X_test, return_cov=True)
+    np.testing.assert_allclose(mean, mean_ref, atol=1e-8)  # source: sklearn GPR, REFERENCES.md
+    np.testing.assert_allclose(cov, cov_ref, atol=1e-8)  # source: sklearn GPR, REFERENCES.md
+    np.testing.assert_allclose(gp.posterior_covariance(X_test[:5], X_test[5:]), cov_ref[:5, 5:], atol=1e-8)
+
+
+def test_sample_y_draws_have_the_mean_and_covariance_of_predict() -> None:
+    # law of large numbers: 40,000 joint draws; the sample mean is within 5 standard errors of
+    # predict's mean and the sample covariance within 5 standard errors of predict(return_cov=True)'s
+    X, y, X_test = _data()
+    gp = ExactGP(Matern52(VARIANCE, LENGTH_SCALES), NOISE, normalize_y=True, optimize=False).fit(X, y)
+    points = X_test[:4]
+    mean, cov = gp.predict(points, return_cov=True)
+    n = 40_000
+    draws = gp.sample_y(points, n_samples=n, random_state=0)
+    assert draws.shape == (4, n)
+    sd = np.sqrt(np.diag(cov))
+    assert np.all(np.abs(draws.mean(axis=1) - mean) < 5 * sd / np.sqrt(n))
+    # sd of a Gaussian sample covariance entry: sqrt((cov_ij^2 + cov_ii cov_jj) / n), the Wishart variance
+    se = np.sqrt((cov**2 + np.outer(np.diag(cov), np.diag(cov))) / n)
+    assert np.all(np.abs(np.cov(draws) - cov) < 5 * se)
+    np.testing.assert_array_equal(gp.sample_y(points, 3, random_state=7), gp.sample_y(points, 3, random_state=7))
+
+
+def test_stored_state_restores_predictions_and_the_penalised_likelihood() -> None:
+    # through JSON text and an npz file, as the store keeps them (no pickle): the same numbers, bit for bit
+    X, y, X_test = _data(25)
+    hyperprior = np.array([[0.0, 1.0], [0.0, 1.0], [0.5, 2.0], [0.0, 1.0], [-3.0, 1.5]])
+    gp = ExactGP(hyperprior=hyperprior, normalize_y=True, basis_prior=(np.zeros(2), np.eye(2)), n_restarts=0)
+    basis = np.column_stack([X[:, 2], np.ones(len(y))])
+    gp.fit(X, y, basis=basis)
+    rebuilt = ExactGP.from_state(*_through_json_and_npz(*gp.to_state()))
+    basis_test = np.column_stack([X_test[:, 2], np.ones(len(X_test))])
+    for a, b in zip(rebuilt.predict(X_test, return_cov=True, basis=basis_test),
+                    gp.predict(X_test, return_cov=True, basis=basis_test), strict=True):
+        np.testing.assert_array_equal(a, b)
+    assert rebuilt.log_marginal_likelihood() == gp.log_marginal_likelihood()
+    theta = gp.theta + 0.1
+    assert rebuilt.log_posterior(theta) == gp.log_posterior(theta)
+
+
+def _through_json_and_npz(params: dict, arrays: dict) -> tuple[dict, dict]:
+    buffer = io.BytesIO()
+    np.savez(buffer, **arrays)
+    buffer.seek(0)
+    with np.load(buffer, allow_pickle=False) as npz:
+        return json.loads(json.dumps(params)), dict(npz)
 
 
 def test_a_fixed_covariance_term_leaves_the_likelihood_gradient_exact() -> None:

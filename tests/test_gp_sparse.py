@@ -9,6 +9,7 @@ from sklearn.gaussian_process.kernels import ConstantKernel, Matern, WhiteKernel
 
 from gapgauge.compare.kernels import Matern52
 from gapgauge.compare.sparse import SparseGP, kmeans_plusplus
+from test_gp import _through_json_and_npz
 
 LENGTH_SCALES = [0.3, 0.7, 1.5]
 
@@ -90,9 +91,39 @@ def test_sparse_posterior_covariance_with_inducing_points_at_the_data_equals_the
                                      optimizer=None, alpha=0.05).fit(X, y)
     sparse = SparseGP(Matern52(1.3, LENGTH_SCALES), 0.05, inducing=X, optimize=False, normalize_y=False,
                       jitter=1e-12).fit(X, y)
-    reference = exact.predict(X_test, return_cov=True)[1]
+    mean_ref, reference = exact.predict(X_test, return_cov=True)
     # tolerance: the 1e-12 relative jitter on K_uu, amplified by its condition number (as above)
     np.testing.assert_allclose(sparse.posterior_covariance(X_test[:8], X_test[8:]), reference[:8, 8:], atol=1e-6)
-    own = sparse.posterior_covariance(X_test)
+    mean, own = sparse.predict(X_test, return_cov=True)
+    np.testing.assert_allclose(mean, mean_ref, atol=1e-6)
     np.testing.assert_allclose(own, reference, atol=1e-6)
     np.testing.assert_allclose(np.sqrt(np.diag(own)), sparse.predict(X_test, return_std=True)[1], rtol=1e-9)
+
+
+def test_a_reloaded_sparse_gp_keeps_its_predictions_and_its_bound() -> None:
+    # the stored state holds the hyperparameter subsample, so the bound (Titsias 2009, on that subsample)
+    # can be evaluated after a reload; through JSON text and npz as the store keeps it: the same numbers
+    X, y, X_test = _data(300)
+    sparse = SparseGP(n_inducing=20, n_subsample=120, n_inducing_subsample=30, max_iter=30, random_state=0)
+    sparse.fit(X, y)
+    rebuilt = SparseGP.from_state(*_through_json_and_npz(*sparse.to_state()))
+    for a, b in zip(rebuilt.predict(X_test, return_cov=True), sparse.predict(X_test, return_cov=True), strict=True):
+        np.testing.assert_array_equal(a, b)
+    assert rebuilt.log_marginal_likelihood() == sparse.log_marginal_likelihood()
+    theta = sparse.theta + 0.2
+    value, grad = rebuilt.log_marginal_likelihood(theta, eval_gradient=True)
+    expected_value, expected_grad = sparse.log_marginal_likelihood(theta, eval_gradient=True)
+    assert value == expected_value
+    np.testing.assert_array_equal(grad, expected_grad)
+
+
+def test_sparse_sample_y_draws_have_the_mean_and_covariance_of_predict() -> None:
+    # law of large numbers: 40,000 joint draws, within 5 standard errors (the Wishart variance for the covariance)
+    X, y, X_test = _data()
+    sparse = SparseGP(Matern52(1.3, LENGTH_SCALES), 0.05, inducing=X[:15], optimize=False).fit(X, y)
+    mean, cov = sparse.predict(X_test[:3], return_cov=True)
+    n = 40_000
+    draws = sparse.sample_y(X_test[:3], n_samples=n, random_state=1)
+    assert np.all(np.abs(draws.mean(axis=1) - mean) < 5 * np.sqrt(np.diag(cov) / n))
+    se = np.sqrt((cov**2 + np.outer(np.diag(cov), np.diag(cov))) / n)
+    assert np.all(np.abs(np.cov(draws) - cov) < 5 * se)

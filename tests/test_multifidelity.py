@@ -2,13 +2,11 @@
 
 from __future__ import annotations
 
-import io
-import json
-
 import numpy as np
 import pytest
 
 from gapgauge.compare.multifidelity import MultiFidelityGP
+from test_gp import _through_json_and_npz
 
 
 def forrester_high(x: np.ndarray) -> np.ndarray:
@@ -68,13 +66,25 @@ def test_without_hardware_trials_the_prior_is_the_simulation_level_with_wider_un
 
 
 def test_stored_state_predicts_like_the_fitted_model(forrester_model: MultiFidelityGP) -> None:
-    # through JSON text and an npz file, as the store keeps it (no pickle)
-    params, arrays = forrester_model.to_state()
-    buffer = io.BytesIO()
-    np.savez(buffer, **arrays)
-    buffer.seek(0)
-    with np.load(buffer, allow_pickle=False) as npz:
-        rebuilt = MultiFidelityGP.from_state(json.loads(json.dumps(params)), dict(npz))
+    # through JSON text and an npz file, as the store keeps it (no pickle): the same numbers, and the same
+    # hardware-level log marginal likelihood at and away from the fitted hyperparameters
+    rebuilt = MultiFidelityGP.from_state(*_through_json_and_npz(*forrester_model.to_state()))
     x = np.linspace(0.0, 1.0, 31)[:, None]
+    for a, b in zip(rebuilt.predict(x, return_cov=True), forrester_model.predict(x, return_cov=True), strict=True):
+        np.testing.assert_array_equal(a, b)
     np.testing.assert_array_equal(rebuilt.predict(x, return_std=True)[1], forrester_model.predict(x, True)[1])
-    np.testing.assert_array_equal(rebuilt.predict(x), forrester_model.predict(x))
+    assert rebuilt.log_marginal_likelihood() == forrester_model.log_marginal_likelihood()
+    theta = forrester_model.delta_.theta + 0.1
+    assert rebuilt.log_marginal_likelihood(theta) == forrester_model.log_marginal_likelihood(theta)
+    assert rebuilt.rho_interval_ == forrester_model.rho_interval_
+
+
+def test_sample_y_draws_have_the_mean_and_covariance_of_predict(forrester_model: MultiFidelityGP) -> None:
+    # law of large numbers: 40,000 joint draws, within 5 standard errors (the Wishart variance for the covariance)
+    x = np.array([[0.2], [0.5], [0.8]])
+    mean, cov = forrester_model.predict(x, return_cov=True)
+    n = 40_000
+    draws = forrester_model.sample_y(x, n_samples=n, random_state=2)
+    assert np.all(np.abs(draws.mean(axis=1) - mean) < 5 * np.sqrt(np.diag(cov) / n))
+    se = np.sqrt((cov**2 + np.outer(np.diag(cov), np.diag(cov))) / n)
+    assert np.all(np.abs(np.cov(draws) - cov) < 5 * se)

@@ -78,3 +78,22 @@ def test_stored_state_rebuilds_the_simulation_posterior_term_without_refitting(s
     x = np.linspace(0.0, 1.0, 31)[:, None]
     for a, b in zip(rebuilt.predict(x, return_std=True), fitted.predict(x, return_std=True), strict=True):
         np.testing.assert_allclose(a, b, rtol=1e-12, atol=1e-12)
+
+
+@pytest.mark.parametrize("sparse", [False, True], ids=["exact_low", "sparse_low"])
+def test_posterior_covariance_is_gaussian_conditioning_of_the_prior_covariance(sparse: bool) -> None:
+    # R&W eq. 2.24 on the joint prior of the trials and query points (hyperparameters fixed, as the kriging
+    # believer keeps them): Sigma_qq - Sigma_qt (Sigma_tt + s^2 I)^-1 Sigma_tq, cross-covariances included
+    X_high = np.array([[0.1], [0.58], [0.9]])
+    y_high = forrester_high(X_high[:, 0])
+    fitted = MultiFidelityGP(random_state=0, sparse_threshold=3 if sparse else 500, max_inducing=5).fit(
+        X_LOW, _noisy_low(), X_high, y_high
+    )
+    prior = fitted.copy_with_high(np.empty((0, 1)), np.empty(0), optimize=False)
+    X_query = np.array([[0.05], [0.3], [0.6], [0.75]])
+    _, joint = prior.predict(np.vstack([X_high, X_query]), return_cov=True)
+    t, q = slice(0, 3), slice(3, None)
+    noise_var = fitted.hardware_noise_sd_**2
+    expected = joint[q, q] - joint[q, t] @ np.linalg.solve(joint[t, t] + noise_var * np.eye(3), joint[t, q])
+    _, cov = fitted.predict(X_query, return_cov=True)
+    np.testing.assert_allclose(cov, expected, rtol=1e-6, atol=1e-9 * np.max(np.abs(expected)))

@@ -13,7 +13,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from gapgauge.compare.prior import fit_prior, load_prior
+from gapgauge.app.prior import fit_prior, load_prior
 from gapgauge.errors import ModelError
 from gapgauge.records import RolloutBatch, TrialRecord
 from gapgauge.scenario import load_scenario

@@ -36,12 +36,16 @@ def _store_with_trials(tmp_path: Path, profile: str):
 
 @pytest.fixture(scope="module")
 def close_case(tmp_path_factory):
-    return _store_with_trials(tmp_path_factory.mktemp("close"), "close")
+    case = _store_with_trials(tmp_path_factory.mktemp("close"), "close")
+    yield case
+    case[1].close()
 
 
 @pytest.fixture(scope="module")
 def heavy_case(tmp_path_factory):
-    return _store_with_trials(tmp_path_factory.mktemp("heavy"), "heavy_slippery")
+    case = _store_with_trials(tmp_path_factory.mktemp("heavy"), "heavy_slippery")
+    yield case
+    case[1].close()
 
 
 def test_close_standin_has_no_feature_that_does_not_carry_over(close_case):

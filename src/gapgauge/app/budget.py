@@ -52,7 +52,8 @@ def plan_budget(
         target_fraction, target_value, confidence, max_trials, draws, max_fall_risk, n_candidates: as
             for :func:`gapgauge.compare.budget.plan_from_prior` (checked before the prior is read).
         seed: seeds the prior's fit when one is needed, the candidates, the draws and the noise.
-        progress: called as ``progress(stage, done, total)`` as the simulated trials go.
+        progress: called as ``progress(stage, done, total)`` by the prior's fit (when one is needed) and
+            as the simulated trials go.
 
     Raises:
         ModelError: an argument out of range (named), or no prior can be fitted.
@@ -64,7 +65,7 @@ def plan_budget(
     started = time.perf_counter()
     scenario = as_scenario(scenario)
     with open_store(store) as opened:
-        prior = current_prior(scenario, opened, seed=seed)
+        prior = current_prior(scenario, opened, seed=seed, progress=progress)
         plan = plan_from_prior(
             prior, target_fraction=target_fraction, target_value=target_value, confidence=confidence,
             max_trials=max_trials, draws=draws, seed=seed, max_fall_risk=max_fall_risk,

@@ -13,7 +13,7 @@ from pathlib import Path
 
 from ..compare.budget import BudgetPlan
 from ..compare.calibration import CalibrationResult
-from ..compare.prior import PriorFit, load_prior
+from ..compare.prior import PriorFit
 from ..compare.propose import Proposals
 from ..compare.shift import ShiftReport
 from ..errors import StoreError
@@ -25,6 +25,7 @@ from ..report.sections.first_screen import SectionStatus
 from ..scenario import Scenario
 from ..store import Store
 from .common import as_scenario, open_store
+from .prior import load_prior
 
 STAGE = "report"
 

@@ -39,7 +39,7 @@ def shift_command(scenario: str, store_path: str, json_path: str | None, plots_d
                "undecided": "white"}
     title = f"shift: {escape(sc.name)}, {len(report.trial_ids)} trial(s)"
     table = Table(title=title, title_justify="left")
-    for column in ("feature", "verdict", "n", "bias (sd)", f"{1 - s['level']:.0%} bias interval",
+    for column in ("feature", "verdict", "n", "bias (sd)", f"{1 - s.level:.0%} bias interval",
                    "max |resid|", "Wasserstein (sd)", "KS", "Kendall tau"):
         table.add_column(column, overflow="fold")
     for f in report.features:
@@ -55,9 +55,9 @@ def shift_command(scenario: str, store_path: str, json_path: str | None, plots_d
         console.print(f"[{colours[f.verdict]}]{escape(f.name)}[/]: {escape(f.reason)}")
     j = report.joint
     console.print(
-        f"joint ({len(j['features'])} features): MMD^2 {num(j['mmd2'])} (p = {num(j['mmd_p_value'], '.3f')}, "
-        f"{j['mmd_permutations']} permutations); classifier AUC {num(j['classifier_auc'], '.2f')} "
-        f"{pair(j['classifier_auc_interval'])} (p = {num(j['classifier_p_value'], '.3f')})"
+        f"joint ({len(j.features)} features): MMD^2 {num(j.mmd2)} (p = {num(j.mmd_p_value, '.3f')}, "
+        f"{j.mmd_permutations} permutations); classifier AUC {num(j.classifier_auc, '.2f')} "
+        f"{pair(j.classifier_auc_interval)} (p = {num(j.classifier_p_value, '.3f')})"
     )
     if report.objective is not None:
         o = report.objective
@@ -68,10 +68,10 @@ def shift_command(scenario: str, store_path: str, json_path: str | None, plots_d
             f"{num(o.link.slope)} {pair(o.link.slope_interval)} x simulation"
         )
     console.print(
-        f"level {s['level']:g}; carries over: {1 - 2 * s['level']:.0%} bias interval inside "
-        f"+-{s['offset_limit']:g} sd and residuals beyond {s['residual_limit']:g} "
+        f"level {s.level:g}; carries over: {1 - 2 * s.level:.0%} bias interval inside "
+        f"+-{s.offset_limit:g} sd and residuals beyond {s.residual_limit:g} "
         "no more often than in simulation; "
-        f"order kept: Kendall tau >= {s['rank_threshold']:g} with p < level; seed {report.seed}"
+        f"order kept: Kendall tau >= {s.rank_threshold:g} with p < level; seed {report.seed}"
     )
     print_notes(report.notes)
     if json_path:

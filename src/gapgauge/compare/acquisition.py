@@ -26,7 +26,7 @@ from scipy.stats import qmc
 from threadpoolctl import threadpool_limits
 
 from ..errors import ModelError
-from .gp import FIT_BLAS_THREADS
+from .linalg import FIT_BLAS_THREADS
 
 LOG_PHI_CONST = -0.5 * np.log(2.0 * np.pi)
 # a point over the fall-risk limit scores this much lower per unit of excess risk: far below any
@@ -114,7 +114,7 @@ def maximise_acquisition(
     Raises:
         ModelError: no candidate satisfies the fall-risk limit.
     """
-    # many small model calls: one BLAS thread (see gapgauge.compare.gp.FIT_BLAS_THREADS)
+    # many small model calls: one BLAS thread (see gapgauge.compare.linalg.FIT_BLAS_THREADS)
     with threadpool_limits(limits=FIT_BLAS_THREADS, user_api="blas"):
         return _maximise(predict, bounds, best, fall_probability, max_fall_risk, seed, n_candidates,
                          n_starts, max_iter)
@@ -149,7 +149,7 @@ def _maximise(
     if not feasible.any():
         raise ModelError(
             f"no parameter set inside the safe bounds has a modelled fall probability at most "
-            f"{max_fall_risk:g} (lowest found {p_fall.min():.3g}); raise --max-fall-risk or add "
+            f"{max_fall_risk:g} (lowest found {p_fall.min():.3g}); raise max_fall_risk or add "
             "simulations (gapgauge sweep) or hardware trials where the model is unsure"
         )
     incumbent = float(np.min(mean[feasible])) if best is None else float(best)

@@ -419,15 +419,6 @@ class ExactGP:
         gp.coef_cov_ = np.asarray(arrays["coef_cov"]) if has_basis else None
         return gp
 
-    # kept for compare/budget.py until it reads y_mean_ / y_std_ (issue 12); delete then
-    @property
-    def _y_mean(self) -> float:
-        return self.y_mean_
-
-    @property
-    def _y_std(self) -> float:
-        return self.y_std_
-
 
 def draw_gaussian(
     mean: np.ndarray, cov: np.ndarray, n_samples: int, random_state: int | np.random.Generator | None

@@ -32,15 +32,13 @@ is a :class:`~gapgauge.results.Result` whose models travel as unstored fields; :
 from __future__ import annotations
 
 import hashlib
-import json
 import time
 from dataclasses import dataclass, field
-from pathlib import Path
 from typing import Any, ClassVar
 
 import numpy as np
 
-from ..errors import GapgaugeError, ModelError
+from ..errors import ModelError
 from ..progress import Progress, or_silent
 from ..records import RolloutBatch, TrialRecord
 from ..results import Result
@@ -422,19 +420,3 @@ def fit_prior(
         scenario=scenario, objective_model=objective, fall_model=fall,
     )
 
-
-def write_json(path: str | Path, data: dict[str, Any]) -> None:
-    """Write ``data`` as indented JSON (numpy scalars and arrays as numbers and lists).
-
-    Kept for :mod:`gapgauge.compare.budget` until its plan is a :class:`~gapgauge.results.Result`
-    (which writes itself); delete then.
-    """
-    def plain(value: Any) -> Any:
-        if isinstance(value, (np.ndarray, np.generic)):
-            return value.tolist()
-        raise TypeError(f"cannot write a value of type {type(value).__name__} as JSON")
-
-    try:
-        Path(path).write_text(json.dumps(data, indent=2, default=plain) + "\n", encoding="utf-8")
-    except OSError as exc:
-        raise GapgaugeError(f"{path}: cannot write the JSON ({exc.strerror}); pick another path") from None

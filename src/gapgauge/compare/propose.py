@@ -12,31 +12,42 @@ pick the objective model is conditioned on its own predicted mean there, hyperpa
 the next point is chosen under that belief. The fall model is not conditioned on beliefs (a believed
 margin would shrink the fall uncertainty without any evidence). Predicted values reported for every
 proposal come from the fitted prior, not from the beliefs.
+
+Pure: :func:`propose` takes a fitted :class:`~gapgauge.compare.prior.PriorFit` (with its models) and
+the scenario; :func:`gapgauge.app.propose.propose` reads the prior from the store and saves the result.
+Every :class:`Proposals` carries the caution of :mod:`gapgauge.safety` in its JSON.
 """
 
 from __future__ import annotations
 
-import json
-from dataclasses import asdict, dataclass, field
-from pathlib import Path
-from typing import Any
+from dataclasses import dataclass, field
+from typing import Any, ClassVar
 
 import numpy as np
 
 from ..errors import ModelError
+from ..results import Result
+from ..safety import CAUTION
 from ..scenario import Scenario
-from .acquisition import maximise_acquisition
-from .prior import PriorFit, _open_store, fit_prior, load_prior, write_json
+from .acquisition import AcquisitionResult, maximise_acquisition
+from .prior import PriorFit
 
 BATCH_METHOD = "kriging believer (Ginsbourger, Le Riche and Carraro 2010)"
+DEFAULT_CANDIDATES = 1024
+DEFAULT_STARTS = 6
 
 
 @dataclass
 class Proposal:
     """One proposed hardware trial.
 
-    ``params`` by name in scenario units; ``predicted_objective`` and ``predicted_sd`` (latent sd of
-    the hardware objective) in objective units; ``fall_risk`` the modelled probability of a fall.
+    Attributes:
+        params: parameter name -> value, scenario units.
+        predicted_objective: the prior's mean of the hardware objective there, objective units.
+        predicted_sd: the latent sd of the hardware objective there, objective units.
+        fall_risk: the modelled probability of a fall.
+        expected_improvement: EI below the incumbent, objective units.
+        reason: why this point, in words.
     """
 
     params: dict[str, float]
@@ -48,11 +59,25 @@ class Proposal:
 
 
 @dataclass
-class Proposals:
-    """The proposals and how they were made (``to_json`` gives ``{"proposals": [...], ...}``)."""
+class Proposals(Result):
+    """The proposals and how they were made (``to_dict`` gives ``{"proposals": [...], ...}``, which
+    ``gapgauge.sim.standin`` reads as a parameter file).
+
+    Attributes:
+        scenario: the scenario's name.
+        proposals: the proposed trials, in order.
+        max_fall_risk: the fall-risk limit used. count: proposals asked for. seed: seed of the candidates.
+        batch_method: how a batch was made. incumbent: the objective EI improved on, objective units.
+        n_hardware, n_sim: hardware trials and simulated rollouts the prior was fitted on.
+        units: parameter name -> unit. notes: what the reader should know.
+        caution: the safety caution (:data:`gapgauge.safety.CAUTION`).
+    """
+
+    kind: ClassVar[str] = "proposals"
+    schema_version: ClassVar[int] = 1
 
     scenario: str
-    proposals: list[dict[str, Any]]
+    proposals: list[Proposal]
     max_fall_risk: float
     count: int
     seed: int
@@ -62,104 +87,85 @@ class Proposals:
     n_sim: int
     units: dict[str, str] = field(default_factory=dict)
     notes: list[str] = field(default_factory=list)
+    caution: str = CAUTION
 
-    def to_dict(self) -> dict[str, Any]:
-        return asdict(self)
 
-    def to_json(self) -> str:
-        return json.dumps(self.to_dict(), indent=2)
-
-    def write_json(self, path: str | Path) -> None:
-        """Write :meth:`to_dict` to ``path`` (``gapgauge standin --params`` reads it)."""
-        write_json(path, self.to_dict())
+def check_arguments(count: int, max_fall_risk: float, seed: int) -> None:
+    """Raise ModelError, naming the argument, when ``count``, ``max_fall_risk`` or ``seed`` is out of range."""
+    if isinstance(count, bool) or not isinstance(count, (int, np.integer)) or count < 1:
+        raise ModelError(f"count must be an integer of at least 1, got {count!r}")
+    if not 0.0 < max_fall_risk <= 1.0:
+        raise ModelError(f"max_fall_risk must be in (0, 1], got {max_fall_risk}")
+    if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or seed < 0:
+        raise ModelError(f"seed must be a non-negative integer, got {seed!r}")
 
 
 def propose(
     scenario: Scenario,
-    store: Any = None,
+    prior: PriorFit,
     *,
-    prior: PriorFit | None = None,
     count: int = 1,
     max_fall_risk: float = 0.05,
     seed: int = 0,
-    n_candidates: int = 1024,
-    n_starts: int = 6,
+    n_candidates: int = DEFAULT_CANDIDATES,
+    n_starts: int = DEFAULT_STARTS,
 ) -> Proposals:
-    """Propose ``count`` hardware trials for ``scenario``.
+    """Propose ``count`` hardware trials for ``scenario`` from a fitted ``prior`` (with its models).
 
     Args:
-        scenario: the loaded scenario (its safe bounds confine the proposals).
-        store: ``gapgauge.store.Store`` or its path; used when ``prior`` is None: the stored prior
-            if it was fitted on the store's current sweep and trials, else a new fit.
-        prior: a fitted :class:`PriorFit` to use as it is.
+        scenario: the scenario (its safe bounds confine the proposals).
+        prior: the fitted prior (:func:`gapgauge.compare.prior.fit_prior` or
+            :func:`gapgauge.app.prior.load_prior`).
         count: number of proposals (a batch by kriging believer when > 1).
         max_fall_risk: the highest modelled fall probability allowed, in (0, 1].
         seed: seed of the Sobol candidate sets; stored with the result.
+        n_candidates: Sobol candidates per proposal (rounded up to a power of two).
+        n_starts: local searches per proposal.
 
     Raises:
-        ModelError: no prior and no store, a bad count or limit, or nothing feasible.
+        ModelError: a bad argument, a prior without its models, or no candidate under the limit.
     """
-    if count < 1:
-        raise ModelError(f"--count must be at least 1, got {count}")
-    if not 0.0 < max_fall_risk <= 1.0:
-        raise ModelError(f"--max-fall-risk must be in (0, 1], got {max_fall_risk}")
-    store = None if store is None else _open_store(store)
-    if prior is None:
-        if store is None:
-            raise ModelError("propose needs a fitted prior or a store; run `gapgauge prior` first")
-        prior = _current_prior(scenario, store, seed)
+    check_arguments(count, max_fall_risk, seed)
+    if prior.objective_model is None:
+        raise ModelError("the prior has no models; load it with gapgauge.app.prior.load_prior")
     model = prior.objective_model
-    unit_bounds = _safe_unit_bounds(scenario)
+    unit_bounds = safe_unit_bounds(scenario)
     X_hw, y_hw = model.X_high_, model.y_high_
     best = float(np.min(model.predict(X_hw))) if y_hw.size else None
     notes = list(prior.notes)
     if best is None:
-        notes.append(
-            "no hardware trials yet: proposals come from the simulation level plus the discrepancy prior"
-        )
+        notes.append("no hardware trials yet: proposals come from the simulation level plus the discrepancy prior")
     rng = np.random.default_rng(seed)
     fall = prior.fall_model.fall_probability if prior.fall_model is not None else None
     belief = model
-    out: list[dict[str, Any]] = []
+    out: list[Proposal] = []
     incumbent: float | None = best
     for slot in range(count):
 
-        def predict(U: np.ndarray, m=belief) -> tuple[np.ndarray, np.ndarray]:
+        def predict(U: np.ndarray, m: Any = belief) -> tuple[np.ndarray, np.ndarray]:
             return m.predict(U, return_std=True)
 
-        result = maximise_acquisition(
-            predict,
-            unit_bounds,
-            best,
-            fall_probability=fall,
-            max_fall_risk=max_fall_risk,
-            seed=rng,
-            n_candidates=n_candidates,
-            n_starts=n_starts,
-        )
+        result = maximise_acquisition(predict, unit_bounds, best, fall_probability=fall, max_fall_risk=max_fall_risk,
+                                      seed=rng, n_candidates=n_candidates, n_starts=n_starts)
         x_unit = np.clip(result.x, unit_bounds[:, 0], unit_bounds[:, 1])
         x = _inside_safe(scenario, scenario.from_unit(x_unit[None])[0])
         mean, sd = model.predict(x_unit[None], return_std=True)
         if incumbent is None:
             incumbent = result.incumbent
-        out.append(
-            asdict(
-                Proposal(
-                    params=scenario.params_to_mapping(x),
-                    predicted_objective=float(mean[0]),
-                    predicted_sd=float(sd[0]),
-                    fall_risk=float(result.fall_risk),
-                    expected_improvement=float(result.expected_improvement),
-                    reason=_reason(slot, result, best, max_fall_risk),
-                )
-            )
-        )
+        out.append(Proposal(
+            params=scenario.params_to_mapping(x),
+            predicted_objective=float(mean[0]),
+            predicted_sd=float(sd[0]),
+            fall_risk=float(result.fall_risk),
+            expected_improvement=float(result.expected_improvement),
+            reason=_reason(slot, result, best, max_fall_risk),
+        ))
         if slot + 1 < count:
             X_hw = np.vstack([X_hw, x_unit])
             y_hw = np.append(y_hw, result.mean)
             belief = model.copy_with_high(X_hw, y_hw, optimize=False)
             best = result.mean if best is None else min(best, result.mean)
-    proposals = Proposals(
+    return Proposals(
         scenario=scenario.name,
         proposals=out,
         max_fall_risk=float(max_fall_risk),
@@ -172,12 +178,9 @@ def propose(
         units={p.name: p.unit for p in scenario.parameters},
         notes=notes,
     )
-    if store is not None:  # the report reads the latest proposals back with load_model("proposals", hash)
-        store.save_model("proposals", scenario.content_hash, params=proposals.to_dict())
-    return proposals
 
 
-def _reason(slot: int, result: Any, best: float | None, limit: float) -> str:
+def _reason(slot: int, result: AcquisitionResult, best: float | None, limit: float) -> str:
     against = "the best predicted mean" if best is None else f"the incumbent {best:.4g}"
     text = (
         f"largest expected improvement x P(no fall) in the safe bounds (EI {result.expected_improvement:.3g} "
@@ -189,7 +192,7 @@ def _reason(slot: int, result: Any, best: float | None, limit: float) -> str:
     return text
 
 
-def _safe_unit_bounds(scenario: Scenario) -> np.ndarray:
+def safe_unit_bounds(scenario: Scenario) -> np.ndarray:
     """The safe bounds as a ``(dim x 2)`` box in the unit cube (``to_unit`` is increasing per axis)."""
     return scenario.to_unit(scenario.bounds(safe=True).T).T
 
@@ -200,23 +203,4 @@ def _inside_safe(scenario: Scenario, x: np.ndarray) -> np.ndarray:
     return np.clip(x, safe[:, 0], safe[:, 1])
 
 
-def _current_prior(scenario: Scenario, store: Any, seed: int) -> PriorFit:
-    """The stored prior if it was fitted on the store's current sweep and trials, else a new fit."""
-    try:
-        prior = load_prior(scenario, store)
-    except ModelError:
-        return fit_prior(scenario, store, seed=seed, progress=False)
-    batch = store.rollouts(scenario.content_hash, kinds=("sweep",))
-    n_standing = int(
-        np.sum((np.asarray(batch.status) == "ok") & np.isfinite(np.asarray(batch.objective, float)))
-    )
-    n_usable = sum(
-        1
-        for t in store.trials(scenario.content_hash)
-        if t.objective is not None
-        and np.isfinite(t.objective)
-        and not (t.outcome == "fell" or t.features.get("fell"))
-    )
-    if prior.n_sim != n_standing or prior.n_hardware != n_usable:
-        return fit_prior(scenario, store, seed=seed, progress=False)
-    return prior
+__all__ = ["BATCH_METHOD", "Proposal", "Proposals", "check_arguments", "propose", "safe_unit_bounds"]

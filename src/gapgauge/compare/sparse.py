@@ -449,8 +449,3 @@ class SparseGP:
         gp.y_subsample_ = np.asarray(arrays["y_subsample"], dtype=float)
         gp.inducing_subsample_ = np.asarray(arrays["inducing_subsample"], dtype=float)
         return gp
-
-    # kept for compare/budget.py until it reads y_mean_ / y_std_ (issue 12); delete then
-    @property
-    def _y_std(self) -> float:
-        return self.y_std_

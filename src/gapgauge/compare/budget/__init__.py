@@ -7,12 +7,13 @@ each tuned by the proposal policy of :mod:`gapgauge.compare.propose`:
    bounds, in the unit cube of the full bounds; seeded from ``seed``.
 2. Surfaces: joint draws of the hardware objective and the margin of stability on the candidates from
    the fitted posterior (the multi-fidelity prior of :mod:`gapgauge.compare.prior` and the fall model).
-   Each draw is exact for the candidate set: the posterior covariance on all candidates (Kennedy and
-   O'Hagan 2000: the hardware-level GP's, whose prior covariance is ``rho0^2 C_low + k_delta`` with the
-   simulation level's posterior ``C_low``, including the basis coefficients' uncertainty, Rasmussen and
-   Williams 2006 eq. 2.42) is factorised by Cholesky with
-   the least jitter that works; the marginal sds are set to the models' own ``predict`` sds, so a
-   draw's spread at each point is exactly what ``gapgauge propose`` sees. The objective and the margin
+   Each draw is exact for the candidate set: the posterior covariance on all candidates, the models'
+   own ``predict(X, return_cov=True)`` (Kennedy and O'Hagan 2000: the hardware-level GP's, whose prior
+   covariance is ``rho0^2 C_low + k_delta`` with the simulation level's posterior ``C_low``, including
+   the basis coefficients' uncertainty, Rasmussen and Williams 2006 eq. 2.42), is factorised by
+   Cholesky with the least jitter that works (:func:`gapgauge.compare.linalg.cholesky_jittered`); the
+   marginal sds are set to the models' own ``predict`` sds, so a draw's spread at each point is
+   exactly what ``gapgauge propose`` sees. The objective and the margin
    are separate GPs with independent posteriors, so a draw is a pair of independent draws.
 3. Tuning: on every draw, the policy of ``gapgauge propose``, expected improvement times the
    probability of not falling (Jones, Schonlau and Welch 1998; Gardner et al. 2014), with the fall-risk
@@ -29,8 +30,8 @@ each tuned by the proposal policy of :mod:`gapgauge.compare.propose`:
    ``max_fall_risk``); such trials are counted in ``infeasible_steps`` and reported in the notes.
 4. Target, per draw: ``median - fraction (median - best)`` over the candidates on which the draw
    stands (fall chance below one half), the median standing for "a random safe parameter set" and the
-   best for the best achievable; or an absolute ``target_value``. Reached at the first trial that stands with the
-   draw's (latent) objective at or below the target.
+   best for the best achievable; or an absolute ``target_value``. Reached at the first trial that
+   stands with the draw's (latent) objective at or below the target.
 5. Cold start: the same policy on the same draws with a hardware-only model instead of the prior,
    :func:`gapgauge.compare.prior.hardware_only_gp` (Matern 5/2 ARD, constant mean ~ N(0, 1), weak
    priors) for the objective and the same form for the margin (fall risk: the Gaussian tail below

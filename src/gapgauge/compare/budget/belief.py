@@ -14,6 +14,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from ...errors import ModelError
 from ..kernels import Matern52, default_length_scale
 from ..linalg import cholesky_jittered, solve_lower
 from ..multifidelity import MultiFidelityGP
@@ -220,7 +221,15 @@ def beliefs_from_prior(prior: PriorFit, candidates: np.ndarray, seed: int = 0) -
     Each belief's points are the response's hardware trials (``X_high_``, known) followed by the
     candidates. The cold start sees the same trials; its scale hint is the prior's overall level and
     spread when it has too few trials to set its own.
+
+    Raises:
+        ModelError: the prior carries no fitted models.
     """
+    if prior.objective_model is None:
+        raise ModelError(
+            "the prior has no fitted models (a prior read back from its JSON summary carries none); "
+            "take it from gapgauge.app.prior.current_prior or gapgauge.compare.prior.fit_prior"
+        )
     obj = prior.objective_model
     X_o = np.vstack([obj.X_high_, candidates])
     objective, check_o = multifidelity_belief(obj, X_o, n_known=obj.X_high_.shape[0])

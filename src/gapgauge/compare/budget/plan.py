@@ -283,13 +283,18 @@ def plan_from_prior(
         progress: called as ``progress(stage, done, total)`` as the simulated trials go.
 
     Raises:
-        ModelError: an argument out of range, named.
+        ModelError: an argument out of range (named), or a prior without its fitted models.
     """
     check_options(target_fraction=target_fraction, target_value=target_value, confidence=confidence,
                   max_trials=max_trials, draws=draws, max_fall_risk=max_fall_risk, seed=seed,
                   n_candidates=n_candidates)
     started = time.perf_counter()
     scenario = prior.scenario
+    if scenario is None or prior.objective_model is None:
+        raise ModelError(
+            "the prior has no scenario or fitted models (a prior read back from its JSON summary carries "
+            "none); take it from gapgauge.app.prior.current_prior or gapgauge.compare.prior.fit_prior"
+        )
     candidate_seed, monte_carlo_seed = np.random.default_rng(seed).bit_generator.seed_seq.spawn(2)
     if candidates is None:
         candidates = candidate_set(scenario, n_candidates, np.random.default_rng(candidate_seed))

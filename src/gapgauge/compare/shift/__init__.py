@@ -82,6 +82,7 @@ __all__ = [
     "equivalence_power",
     "feature_shift",
     "fit_link",
+    "joint_shift",
     "rank_agreement",
     "settings_used",
     "shift_from_arrays",
