@@ -33,11 +33,12 @@ from sklearn.gaussian_process import GaussianProcessRegressor
 from sklearn.gaussian_process.kernels import ConstantKernel, Matern, WhiteKernel
 from threadpoolctl import threadpool_limits
 
+from gapgauge.app.prior import read_prior_data
+from gapgauge.app.sweep import sweep
 from gapgauge.compare.prior import fit_prior
 from gapgauge.compare.propose import propose
 from gapgauge.compare.sparse import SparseGP
 from gapgauge.scenario import load_scenario
-from gapgauge.app.sweep import sweep
 from gapgauge.store import Store
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -105,7 +106,7 @@ def main() -> None:
     fit_seconds = time.perf_counter() - start
     sparse_rmse = rmse(sparse.predict(X_test), y_test)
     print(f"sparse GP (m = {args.inducing}) on {y_train.size}: {fit_seconds:.1f} s, held-out RMSE "
-          f"{sparse_rmse:.4g}, noise sd {np.sqrt(sparse.noise_) * sparse._y_std:.4g}", flush=True)
+          f"{sparse_rmse:.4g}, noise sd {np.sqrt(sparse.noise_) * sparse.y_std_:.4g}", flush=True)
 
     memory_cap = int(np.sqrt(args.exact_memory_gb * 1e9 / (8 * 15)))
     pilot_n = min(PILOT_N, y_train.size)
@@ -124,10 +125,14 @@ def main() -> None:
     print(f"exact GP on {exact_n}: {exact_seconds:.1f} s, held-out RMSE {exact_rmse:.4g}", flush=True)
 
     start = time.perf_counter()
-    prior = fit_prior(scenario, store_path, seed=args.seed, max_inducing=args.inducing, progress=True)
+    # a full fit, store read included (the prior job would reuse a stored simulation level)
+    with Store(store_path) as store:
+        data = read_prior_data(scenario, store)
+    prior = fit_prior(scenario, data, seed=args.seed, max_inducing=args.inducing,
+                      progress=lambda stage, done, total: print(f"{stage} ({done}/{total})", flush=True))
     prior_seconds = time.perf_counter() - start
     start = time.perf_counter()
-    propose(scenario, prior=prior, count=1, max_fall_risk=args.max_fall_risk, seed=args.seed)
+    propose(scenario, prior, count=1, max_fall_risk=args.max_fall_risk, seed=args.seed)
     propose_seconds = time.perf_counter() - start
     print(f"fit_prior (objective + fall model, {prior.n_sim} + {prior.n_sim_fall_model} points): "
           f"{prior_seconds:.1f} s; propose K = 1: {propose_seconds:.2f} s", flush=True)

@@ -51,9 +51,10 @@ from transfer_methods import METHODS, TuningRun, simulation_optimum, tune  # noq
 from transfer_standin import CACHE, ROOT, StandinTruth, profiles  # noqa: E402
 
 from gapgauge import load_scenario  # noqa: E402
-from gapgauge.compare.prior import fit_prior, load_prior  # noqa: E402
-from gapgauge.errors import ModelError  # noqa: E402
+from gapgauge.app.prior import load_prior, read_prior_data, save_prior  # noqa: E402
 from gapgauge.app.sweep import sweep  # noqa: E402
+from gapgauge.compare.prior import fit_prior  # noqa: E402
+from gapgauge.errors import ModelError, StoreError  # noqa: E402
 from gapgauge.store import Store  # noqa: E402
 
 SCENARIO = ROOT / "scenarios" / "push_recovery.toml"
@@ -101,9 +102,11 @@ def sweep_prior(scenario, path: Path):
             prior = load_prior(scenario, store)
             if prior.n_hardware == 0 and prior.seed == SWEEP_SEED and key_path.exists() and key_path.read_text() == key:
                 return prior
-        except ModelError:
+        except (ModelError, StoreError):  # none stored, or stored by an older gapgauge
             pass
-        prior = fit_prior(scenario, store, seed=SWEEP_SEED, progress=False)
+        # a full fit (no reuse of a stored simulation level: that may be the older code's)
+        prior = fit_prior(scenario, read_prior_data(scenario, store), seed=SWEEP_SEED)
+        save_prior(store, prior)
         key_path.write_text(key)
         return prior
     finally:

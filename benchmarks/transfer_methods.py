@@ -23,7 +23,6 @@ lifts the limit for that one trial; such trials are counted (``limit_lifted``).
 
 from __future__ import annotations
 
-import copy
 import time
 from dataclasses import dataclass, field, replace
 
@@ -35,7 +34,7 @@ from transfer_standin import StandinTruth, safe_sobol
 from gapgauge.compare.acquisition import maximise_acquisition
 from gapgauge.compare.fall import youden_threshold
 from gapgauge.compare.prior import PriorFit, hardware_only_gp
-from gapgauge.compare.propose import _safe_unit_bounds, propose
+from gapgauge.compare.propose import propose, safe_unit_bounds
 from gapgauge.errors import ModelError
 
 METHODS = ("gapgauge", "cold_start", "zero_shot", "random")
@@ -108,19 +107,17 @@ def run_gapgauge(base: PriorFit, obs: Observer, max_trials: int, rng: np.random.
             X, fell = obs.X, obs.fell
             y = np.array(obs.y)
             objective = base.objective_model.copy_with_high(X[~fell], y[~fell], optimize=True)
-            fall = copy.copy(base.fall_model)
-            fall.model_ = base.fall_model.model_.copy_with_high(
-                X, np.maximum(np.array(obs.margin), fall.floor_), optimize=True)
+            fall = base.fall_model.copy_with_high(X, np.array(obs.margin), optimize=True)
             prior = replace(base, objective_model=objective, fall_model=fall, n_hardware=int((~fell).sum()),
                             n_hardware_fall_model=t, notes=[])
         seed = int(rng.integers(2**31))
         try:
-            proposals = propose(scenario, prior=prior, max_fall_risk=MAX_FALL_RISK, seed=seed)
+            proposals = propose(scenario, prior, max_fall_risk=MAX_FALL_RISK, seed=seed)
             lifted.append(False)
         except ModelError:
-            proposals = propose(scenario, prior=prior, max_fall_risk=1.0, seed=seed)
+            proposals = propose(scenario, prior, max_fall_risk=1.0, seed=seed)
             lifted.append(True)
-        x = scenario.params_from_mapping(proposals.proposals[0]["params"])
+        x = scenario.params_from_mapping(proposals.proposals[0].params)
         obs.run(scenario.to_unit(x[None]))
     return lifted
 
@@ -181,7 +178,7 @@ def simulation_optimum(base: PriorFit, n_candidates: int = 8192) -> np.ndarray:
     """The lowest simulation-level mean of the prior inside the safe box, among points whose prior fall
     risk is at most the limit: Sobol candidates, then L-BFGS-B from the 4 best (kept only if feasible)."""
     scenario = base.scenario
-    safe = _safe_unit_bounds(scenario)
+    safe = safe_unit_bounds(scenario)
     model = base.objective_model
     U = safe_sobol(scenario, n_candidates, seed=5)
     mean = model.predict_low(U)

@@ -30,13 +30,13 @@ from pathlib import Path
 import numpy as np
 from scipy.stats import qmc
 
-from gapgauge.compare.propose import _safe_unit_bounds
+from gapgauge.app.ingest import trial_record
+from gapgauge.compare.propose import safe_unit_bounds
 from gapgauge.features import success as success_rule
+from gapgauge.logs import read_log
 from gapgauge.scenario import Scenario
 from gapgauge.sim.rollout import simulate
 from gapgauge.sim.standin import load_profile, run_standin
-from gapgauge.app.ingest import trial_record
-from gapgauge.logs import read_log
 
 ROOT = Path(__file__).resolve().parents[1]
 CACHE = ROOT / "benchmarks" / "cache" / "transfer"
@@ -76,7 +76,7 @@ class StandinTruth:
         self.profile = load_profile(self.path, scenario)
         self.physics = self.profile.physics_row(scenario)
         self.nthread = nthread
-        self.safe = _safe_unit_bounds(scenario)
+        self.safe = safe_unit_bounds(scenario)
         self.evaluations = 0
 
     def evaluate(self, U: np.ndarray) -> Outcome:
@@ -163,7 +163,7 @@ class StandinTruth:
 
 def safe_sobol(scenario: Scenario, n: int, seed: int) -> np.ndarray:
     """``(n x dim)`` scrambled Sobol points (scipy.stats.qmc) uniform in the safe box, unit cube of the full bounds."""
-    safe = _safe_unit_bounds(scenario)
+    safe = safe_unit_bounds(scenario)
     sobol = qmc.Sobol(scenario.dim, scramble=True, seed=np.random.default_rng(seed))
     u = sobol.random_base2(int(np.ceil(np.log2(max(n, 2)))))[:n]
     return safe[:, 0] + u * (safe[:, 1] - safe[:, 0])

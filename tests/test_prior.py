@@ -7,13 +7,14 @@ and the margin of stability is a plane.
 
 from __future__ import annotations
 
-import json
 from pathlib import Path
 
 import numpy as np
 import pytest
 
-from gapgauge.app.prior import fit_prior, load_prior
+from gapgauge.app.prior import current_prior, fit_prior, load_prior, read_prior_data
+from gapgauge.compare.prior import PriorFit
+from gapgauge.compare.prior import fit_prior as fit_prior_data
 from gapgauge.errors import ModelError
 from gapgauge.records import RolloutBatch, TrialRecord
 from gapgauge.scenario import load_scenario
@@ -55,8 +56,14 @@ def make_store(path: Path, n_trials: int, seed: int = 0) -> tuple[object, Store]
         indices=np.arange(N_SIM), params=params, physics=np.ones((N_SIM, 6)),
         physics_names=tuple(r.name for r in scenario.physics), status=status,
         reason=np.array([""] * N_SIM, dtype=object), objective=objective, features=features))
+    add_trials(scenario, store, range(n_trials), rng, seed)
+    return scenario, store
+
+
+def add_trials(scenario, store: Store, numbers: range, rng: np.random.Generator, seed: int = 0) -> None:
+    """Synthetic hardware trials inside the safe bounds: objective RHO * simulation + OFFSET plus noise."""
     safe = scenario.to_unit(scenario.bounds(safe=True).T).T
-    for i in range(n_trials):
+    for i in numbers:
         u = rng.uniform(safe[:, 0], safe[:, 1])[None]
         x = scenario.from_unit(u)[0]
         store.add_trial(TrialRecord(
@@ -65,19 +72,18 @@ def make_store(path: Path, n_trials: int, seed: int = 0) -> tuple[object, Store]
             outcome="stood", notes="", synthetic=True,
             features={"margin_of_stability": float(margin(u)[0]), "fell": 0.0},
             objective=float(RHO * sim_objective(u)[0] + OFFSET + 0.02 * rng.normal())))
-    return scenario, store
 
 
 @pytest.fixture(scope="module")
 def fitted(tmp_path_factory: pytest.TempPathFactory):
     scenario, store = make_store(tmp_path_factory.mktemp("prior") / "store.sqlite", n_trials=6)
-    return scenario, store, fit_prior(scenario, store, seed=0, progress=False)
+    return scenario, store, fit_prior(scenario, store, seed=0)
 
 
 def test_prior_without_a_sweep_says_which_command_fills_the_store(tmp_path: Path) -> None:
     scenario = load_scenario(SCENARIO_PATH)
     with pytest.raises(ModelError, match="gapgauge sweep"):
-        fit_prior(scenario, Store(tmp_path / "empty.sqlite"), progress=False)
+        fit_prior(scenario, Store(tmp_path / "empty.sqlite"))
 
 
 def test_prior_uses_standing_rollouts_for_the_objective_and_all_measured_ones_for_falls(fitted) -> None:
@@ -87,15 +93,19 @@ def test_prior_uses_standing_rollouts_for_the_objective_and_all_measured_ones_fo
     assert prior.n_diverged == 5
     assert any("diverged" in note for note in prior.notes)
     assert prior.n_hardware == 6
+    # N_SIM = 200 standing rollouts is below multifidelity.SPARSE_THRESHOLD (500): the exact GP
+    assert prior.simulation_level == "ExactGP"
 
 
-def test_prior_summary_is_json_with_the_documented_keys(fitted) -> None:
-    _, _, prior = fitted
-    summary = json.loads(json.dumps(prior.summary()))
-    for key in ("rho", "rho_interval", "fit_seconds", "discrepancy_scale", "loo"):
-        assert key in summary
+def test_the_stored_prior_json_reads_back_as_the_same_result(fitted) -> None:
+    # the store's typed-result path (store.load_result) reads the prior's row without its models
+    scenario, store, prior = fitted
+    stored = store.load_result(PriorFit, scenario.content_hash)
+    assert stored.to_dict() == prior.to_dict()
+    assert stored.objective_model is None
+    assert {"rho", "rho_interval", "fit_seconds", "discrepancy_scale", "loo", "simulation_key"} <= set(prior.to_dict())
     for model in ("multi_fidelity", "hardware_only", "simulation_only"):
-        assert set(summary["loo"][model]) == {"rmse", "log_predictive_density"}
+        assert set(stored.loo[model]) == {"rmse", "log_predictive_density"}
 
 
 def test_prior_finds_the_constructed_rho_within_its_interval(fitted) -> None:
@@ -120,6 +130,7 @@ def test_stored_prior_predicts_exactly_like_the_fitted_one(fitted) -> None:
     np.testing.assert_array_equal(loaded.predict(X)[0], prior.predict(X)[0])
     np.testing.assert_array_equal(loaded.predict(X)[1], prior.predict(X)[1])
     np.testing.assert_array_equal(loaded.fall_probability(X), prior.fall_probability(X))
+    assert loaded.objective_model.log_marginal_likelihood() == prior.objective_model.log_marginal_likelihood()
     assert loaded.rho == prior.rho
 
 
@@ -127,3 +138,28 @@ def test_load_prior_before_any_fit_says_to_run_prior(tmp_path: Path) -> None:
     scenario = load_scenario(SCENARIO_PATH)
     with pytest.raises(ModelError, match="gapgauge prior"):
         load_prior(scenario, Store(tmp_path / "empty.sqlite"))
+
+
+def test_a_new_trial_refits_only_the_hardware_level(tmp_path: Path) -> None:
+    # issue 12, bug 8: with the sweep unchanged the stored simulation level is reused; the result is the
+    # one a full fit from scratch gives (the simulation level's fit is deterministic given the seed)
+    scenario, store = make_store(tmp_path / "store.sqlite", n_trials=3, seed=3)
+    first = fit_prior(scenario, store, seed=0)
+    assert current_prior(scenario, store).fit_seconds == first.fit_seconds  # nothing changed: the stored fit
+    add_trials(scenario, store, range(3, 4), np.random.default_rng(9), seed=3)
+    calls: list[tuple[str, int, int]] = []
+    second = current_prior(scenario, store, progress=lambda *call: calls.append(call))
+    assert second.simulation_reused and second.n_hardware == first.n_hardware + 1
+    assert second.simulation_key == first.simulation_key and second.hardware_key != first.hardware_key
+    for new, old in ((second.objective_model, first.objective_model),
+                     (second.fall_model.model_, first.fall_model.model_)):
+        np.testing.assert_array_equal(new.low_.kernel_.theta, old.low_.kernel_.theta)
+        assert new.low_.noise_ == old.low_.noise_
+        assert new.X_high_.shape[0] == old.X_high_.shape[0] + 1
+    assert second.rho != first.rho
+    assert [(done, total) for _, done, total in calls] == [(1, 3), (2, 3), (3, 3)]
+    scratch = fit_prior_data(scenario, read_prior_data(scenario, store), seed=0)
+    X = scenario.from_unit(np.random.default_rng(6).uniform(size=(10, scenario.dim)))
+    for a, b in zip(second.predict(X), scratch.predict(X), strict=True):
+        np.testing.assert_allclose(a, b, rtol=1e-10, atol=1e-12)
+    np.testing.assert_allclose(second.fall_probability(X), scratch.fall_probability(X), rtol=1e-10, atol=1e-12)

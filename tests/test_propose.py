@@ -9,10 +9,13 @@ import numpy as np
 import pytest
 from click.testing import CliRunner
 
+from gapgauge.app.prior import fit_prior
+from gapgauge.app.propose import propose
 from gapgauge.cli import main
+from gapgauge.compare.propose import Proposal, Proposals
+from gapgauge.compare.propose import propose as propose_from_prior
+from gapgauge.errors import ModelError
 from gapgauge.safety import CAUTION
-from gapgauge.compare.prior import fit_prior
-from gapgauge.compare.propose import propose
 from gapgauge.sim.standin import load_params_file
 from test_prior import SCENARIO_PATH, make_store
 
@@ -21,39 +24,56 @@ from test_prior import SCENARIO_PATH, make_store
 def with_trials(tmp_path_factory: pytest.TempPathFactory):
     path = tmp_path_factory.mktemp("propose") / "store.sqlite"
     scenario, store = make_store(path, n_trials=3, seed=1)
-    return scenario, store, path, fit_prior(scenario, store, seed=0, progress=False)
+    return scenario, store, path, fit_prior(scenario, store, seed=0)
 
 
 def test_proposals_stay_in_the_safe_bounds_under_the_fall_limit(with_trials) -> None:
     scenario, _, _, prior = with_trials
-    result = propose(scenario, prior=prior, count=3, max_fall_risk=0.05, seed=0)
+    result = propose_from_prior(scenario, prior, count=3, max_fall_risk=0.05, seed=0)
     safe = scenario.bounds(safe=True)
     assert len(result.proposals) == 3
     for p in result.proposals:
-        x = scenario.params_from_mapping(p["params"])
+        assert isinstance(p, Proposal)
+        x = scenario.params_from_mapping(p.params)
         assert np.all(x >= safe[:, 0]) and np.all(x <= safe[:, 1])
-        assert p["fall_risk"] <= 0.05
+        assert p.fall_risk <= 0.05
         assert prior.fall_probability(x[None])[0] <= 0.05  # the model's own figure at the point
-        assert set(p) >= {"params", "predicted_objective", "predicted_sd", "fall_risk", "reason"}
 
 
 def test_a_batch_by_kriging_believer_gives_distinct_trials_and_says_so(with_trials) -> None:
     scenario, _, _, prior = with_trials
-    result = propose(scenario, prior=prior, count=3, seed=0)
-    points = np.array([scenario.params_from_mapping(p["params"]) for p in result.proposals])
+    result = propose_from_prior(scenario, prior, count=3, seed=0)
+    points = np.array([scenario.params_from_mapping(p.params) for p in result.proposals])
     assert len({tuple(np.round(scenario.to_unit(points), 6)[i]) for i in range(3)}) == 3
-    assert "kriging believer" in result.proposals[1]["reason"]
+    assert "kriging believer" in result.proposals[1].reason
 
 
 def test_proposals_json_is_what_the_standin_reads(with_trials, tmp_path: Path) -> None:
     # the contract: gapgauge standin --params takes propose's {"proposals": [{"params": ...}]}
     scenario, _, _, prior = with_trials
-    result = propose(scenario, prior=prior, count=2, seed=0)
+    result = propose_from_prior(scenario, prior, count=2, seed=0)
     out = tmp_path / "proposals.json"
     result.write_json(out)
     sets = load_params_file(out)
     assert [scenario.params_from_mapping(s).tolist() for s in sets] == [
-        scenario.params_from_mapping(p["params"]).tolist() for p in result.proposals]
+        scenario.params_from_mapping(p.params).tolist() for p in result.proposals]
+    # the caution travels with the proposals (DESIGN.md section 7; the text of gapgauge.safety)
+    assert json.loads(out.read_text())["caution"] == CAUTION
+
+
+def test_propose_stores_its_result_for_the_report(with_trials) -> None:
+    scenario, store, _, _ = with_trials
+    result = propose(scenario, store, count=1, seed=4)
+    stored = store.load_result(Proposals, scenario.content_hash)
+    assert stored == result
+
+
+def test_a_bad_count_is_refused_naming_the_argument(with_trials) -> None:
+    scenario, store, _, _ = with_trials
+    with pytest.raises(ModelError, match="^count must be"):
+        propose(scenario, store, count=0)
+    with pytest.raises(ModelError, match="^max_fall_risk must be"):
+        propose(scenario, store, max_fall_risk=0.0)
 
 
 def test_without_hardware_trials_proposals_come_from_the_simulation_level(tmp_path: Path) -> None:

@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import json
 import shutil
+from collections.abc import Callable
 from pathlib import Path
 
 from gapgauge.app.budget import plan_budget
@@ -20,6 +21,7 @@ from gapgauge.app.prior import fit_prior
 from gapgauge.app.propose import propose
 from gapgauge.app.shift import assess_shift
 from gapgauge.app.sweep import sweep
+from gapgauge.results import Result
 from gapgauge.scenario import Scenario, load_scenario
 from gapgauge.sim.standin import run_standin
 from gapgauge.store import Store
@@ -57,6 +59,19 @@ def _make_hostile(csv: Path) -> Path:
     return target
 
 
+def run_jobs(scenario: Scenario, store: Store, kinds: tuple[str, ...] = JOBS) -> dict[str, Result]:
+    """Run the analysis jobs named in ``kinds`` on ``store``, in the order a lab runs them; each stores its
+    result. Returns what each job returned, by kind."""
+    jobs: dict[str, Callable[[], Result]] = {
+        "shift": lambda: assess_shift(scenario, store, seed=0),
+        "prior": lambda: fit_prior(scenario, store, seed=0),
+        "proposals": lambda: propose(scenario, store, count=3, seed=0),
+        "budget": lambda: plan_budget(scenario, store, seed=0, **QUICK_BUDGET),
+        "calibration": lambda: calibrate(scenario, store, seed=0, **QUICK_CALIBRATION),
+    }
+    return {kind: job() for kind, job in jobs.items() if kind in kinds}
+
+
 def build_store(
     scenario: Scenario,
     path: Path,
@@ -67,7 +82,8 @@ def build_store(
     kinds: tuple[str, ...] = JOBS,
 ) -> Store:
     """A store at ``path`` holding a sweep of ``sweep_rollouts`` (none when 0), ``trials`` stand-in trials
-    and the results of the jobs named in ``kinds``, in the order a lab runs them; returned open."""
+    (the first with a hostile file name, robot id and notes if ``hostile``) and the results of the jobs
+    named in ``kinds``; returned open."""
     store = Store(path)
     store.add_scenario(scenario)
     if sweep_rollouts:
@@ -78,14 +94,5 @@ def build_store(
         if hostile:
             logs[0] = _make_hostile(logs[0])
         ingest(scenario, store, logs, matches=MATCHES, seed=0)
-    if "shift" in kinds:
-        assess_shift(scenario, store, seed=0)
-    if "prior" in kinds:
-        fit_prior(scenario, store, seed=0)
-    if "proposals" in kinds:
-        propose(scenario, store, count=3, seed=0)
-    if "budget" in kinds:
-        plan_budget(scenario, store, seed=0, **QUICK_BUDGET)
-    if "calibration" in kinds:
-        calibrate(scenario, store, seed=0, **QUICK_CALIBRATION)
+    run_jobs(scenario, store, kinds)
     return store

@@ -73,8 +73,7 @@ def _write(rendered: RenderedReport, out: Path, json_path: Path, plots_dir: Path
                 (plots_dir / f"{fig.name}.png").write_bytes(fig.png)
     except OSError as exc:
         raise StoreError(
-            f"{exc.filename or out}: cannot write the report ({exc.strerror}); check the folder exists and is "
-            "writable"
+            f"{exc.filename or out}: cannot write the report ({exc.strerror}); check the folder exists and is writable"
         ) from None
 
 

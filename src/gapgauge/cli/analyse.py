@@ -200,8 +200,8 @@ def budget_command(scenario: str, store_path: str, target_fraction: float, targe
     for column in ("", "P50", "P80", "P95", level)[: len(keys) + 1] + ("reached", "expected falls"):
         table.add_column(column, justify="right")
     for label, arm in (("with the simulation prior", plan.with_prior), ("cold start (no prior)", plan.cold_start)):
-        table.add_row(label, *[book_text(arm[k], plan.max_trials) for k in keys],
-                      f"{100 * arm['reached_fraction']:.0f}%", f"{arm['expected_falls']:.2f}")
+        table.add_row(label, *[book_text(getattr(arm, k), plan.max_trials) for k in keys],
+                      f"{100 * arm.reached_fraction:.0f}%", f"{arm.expected_falls:.2f}")
     console.print(table)
     if plan.saving is not None:
         console.print(f"saving (cold P80 - prior P80): {plan.saving} trial(s)")
@@ -213,9 +213,9 @@ def budget_command(scenario: str, store_path: str, target_fraction: float, targe
     for n in marks:
         curve.add_column(str(n), justify="right")
     for key, label in (("with_prior", "with prior"), ("cold_start", "cold start")):
-        curve.add_row(label, *[f"{plan.curve[n - 1][key]:.2f}" for n in marks])
+        curve.add_row(label, *[f"{getattr(plan.curve[n - 1], key):.2f}" for n in marks])
     console.print(curve)
-    console.print(f"target: {escape(plan.target['definition'])}; fall-risk limit {plan.max_fall_risk:g}; "
+    console.print(f"target: {escape(plan.target.definition)}; fall-risk limit {plan.max_fall_risk:g}; "
                   f"{plan.n_hardware} hardware trial(s) known; seed {plan.seed}; {plan.seconds:.1f} s")
     print_notes(plan.notes)
     console.print(f"[bold]{escape(plan.sentence)}[/]")

@@ -5,8 +5,8 @@
     high(x) = rho * low(x) + delta(x),
 
 fitted recursively as in Le Gratiet and Garnier (2014): first the simulation level ``low`` alone
-(a :class:`~gapgauge.compare.sparse.SparseGP` for many rollouts, an
-:class:`~gapgauge.compare.gp.ExactGP` for few), then the hardware level given the simulation
+(a :class:`~gapgauge.compare.sparse.SparseGP` above ``SPARSE_THRESHOLD`` = 500 points, an
+:class:`~gapgauge.compare.gp.ExactGP` at or below it), then the hardware level given the simulation
 level's posterior mean at the trial parameters. As in Le Gratiet and Garnier, rho, a constant
 offset and a linear trend are regression coefficients of the discrepancy GP, with a Gaussian prior;
 their posterior given the discrepancy's hyperparameters is Gaussian and exact (Rasmussen and

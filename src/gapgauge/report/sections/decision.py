@@ -101,13 +101,15 @@ def _prior_rules(inputs: ReportInputs, carry: str, reasons: list[str]) -> Decisi
     p80 = budget_section.p80(inputs.budget, "with_prior")
     cold = budget_section.p80(inputs.budget, "cold_start")
     command = None
-    if p80 is not None:
+    if inputs.budget is None:
+        command = inputs.command("budget")
+        step += "; plan the trial budget first"
+    elif p80 is not None:
         step += f"; budget P80 = {p80:.0f} trials"
         if cold is not None:
             step += f" (cold start {cold:.0f})"
-    else:
-        command = inputs.command("budget")
-        step += "; plan the trial budget first"
+    else:  # planned, but 80% of the draws do not reach the target within the simulated horizon
+        step += f"; budget P80 beyond the {inputs.budget.max_trials} trials planned for"
     return Decision(carry, "go", step + ".", command, tuple(reasons))
 
 
@@ -126,7 +128,8 @@ def decide(inputs: ReportInputs) -> Decision:
        leave-one-out error is worse than hardware alone: tune on hardware with care, calibrate first
        if not done;
     9. otherwise go to hardware with the proposed trials (``gapgauge propose`` if there are none),
-       quoting the budget's P80.
+       quoting the budget's P80 (``gapgauge budget`` if there is no budget; "beyond the trials
+       planned for" when the draws do not reach the target within the budget's horizon).
     """
     n_rollouts, n_trials = inputs.n_rollouts, len(inputs.trials)
     if n_rollouts == 0:

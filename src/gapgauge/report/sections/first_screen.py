@@ -130,9 +130,7 @@ def cautions(inputs: ReportInputs) -> list[str]:
             "path, not the behaviour of a real machine."
         )
     if 0 < n_trials < FEW_TRIALS:
-        out.append(
-            f"Only {n_trials} hardware trials: verdicts and the prior's link are uncertain; read the intervals."
-        )
+        out.append(f"Only {n_trials} hardware trials: verdicts and the prior's link are uncertain; read the intervals.")
     out.append(
         "Predictions hold inside the swept bounds and the physics ranges simulated; proposals are confined "
         "to the safe bounds, but a modelled fall risk is an estimate, not a limit the robot obeys."

@@ -21,7 +21,7 @@ LOO_NAMES = {
 
 def loo_rmse(prior: PriorFit, model: str) -> float | None:
     """Leave-one-out RMSE of ``model`` (a key of :data:`LOO_NAMES`), None when too few trials."""
-    return number(prior.loo[model].rmse) if model in prior.loo else None
+    return number(prior.loo[model]["rmse"]) if model in prior.loo else None
 
 
 def _table(prior: PriorFit) -> list[tuple[str, str]]:
@@ -30,6 +30,12 @@ def _table(prior: PriorFit) -> list[tuple[str, str]]:
         ("rho interval", fmt_interval(prior.rho_interval)),
         ("fit time", f"{fmt(prior.fit_seconds)} s"),
         ("discrepancy scale", fmt(prior.discrepancy_scale)),
+        ("offset", fmt(prior.offset)),
+        ("hardware noise sd", fmt(prior.hardware_noise_sd)),
+        (
+            "simulation level",
+            prior.simulation_level + (" (reused from the previous fit)" if prior.simulation_reused else ""),
+        ),
         ("simulation rollouts used", fmt(prior.n_sim)),
         ("simulation rollouts for the fall model", fmt(prior.n_sim_fall_model)),
         ("hardware trials used", fmt(prior.n_hardware)),
@@ -48,10 +54,10 @@ def _loo_rows(prior: PriorFit) -> list[dict[str, Any]]:
         rows.append(
             {
                 "name": label,
-                "rmse": fmt(score.rmse),
-                "lpd": fmt(score.log_predictive_density),
-                "rmse_value": number(score.rmse),
-                "lpd_value": number(score.log_predictive_density),
+                "rmse": fmt(score["rmse"]),
+                "lpd": fmt(score["log_predictive_density"]),
+                "rmse_value": number(score["rmse"]),
+                "lpd_value": number(score["log_predictive_density"]),
             }
         )
     return rows
