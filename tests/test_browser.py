@@ -24,10 +24,9 @@ from typing import Any
 
 import pytest
 
-from gapgauge import load_scenario
+from gapgauge.app.report import write_report
 from gapgauge.safety import CAUTION
-from gapgauge.report.html import write_report
-from test_report_support import REPO, build_store
+from test_report_support import build_store, project
 
 CHROMIUM = "/usr/bin/chromium"
 ARTIFACTS = Path(__file__).parent / "artifacts"
@@ -196,10 +195,10 @@ def browser():
 
 @pytest.fixture(scope="module")
 def report(tmp_path_factory) -> Path:
-    scenario = load_scenario(REPO / "scenarios" / "push_recovery.toml")
     folder = tmp_path_factory.mktemp("browser")
-    store = build_store(scenario, folder / "store.sqlite", hostile=True)
-    return write_report(scenario, store, folder / "report.html").path
+    scenario = project(folder)
+    with build_store(scenario, folder / "store.sqlite", hostile=True) as store:
+        return write_report(scenario, store, folder / "report.html").path
 
 
 IMAGES = "[...document.images].map(i => ({alt: i.alt, complete: i.complete, width: i.naturalWidth}))"

@@ -42,7 +42,7 @@ def _stored(scenario: Scenario, store: Store) -> PriorFit | None:
         return None
     try:
         return PriorFit.from_state(loaded[0], loaded[1] or {}, scenario)
-    except (ModelError, StoreError, KeyError, TypeError, ValueError):
+    except (ModelError, StoreError, KeyError):
         return None
 
 

@@ -12,6 +12,7 @@ from ..app.prior import fit_prior
 from ..app.propose import propose
 from ..app.shift import assess_shift
 from ..compare.budget import book_text
+from ..compare.multifidelity import SPARSE_THRESHOLD
 from ..safety import CAUTION
 from ..scenario import load_scenario
 from .common import console, json_option, num, pair, print_notes, progress_bars, store_option
@@ -89,7 +90,8 @@ def shift_command(scenario: str, store_path: str, json_path: str | None, plots_d
 @click.option("--seed", default=0, show_default=True, type=click.IntRange(0),
               help="Seed of the subsample, inducing points and optimiser restarts.")
 @click.option("--max-inducing", default=300, show_default=True, type=click.IntRange(10, 5000),
-              help="Inducing points of the simulation level (sparse GP above 2,000 rollouts).")
+              help=f"Inducing points of the simulation level (a sparse GP above {SPARSE_THRESHOLD:,} "
+              "standing rollouts).")
 def prior_command(scenario: str, store_path: str, json_path: str | None, seed: int, max_inducing: int) -> None:
     """Fit and store the multi-fidelity prior (simulation corrected by hardware) and the fall model."""
 
@@ -102,8 +104,8 @@ def prior_command(scenario: str, store_path: str, json_path: str | None, seed: i
     console.print(f"rho = {num(fit.rho)}  95% interval [{num(low)}, {num(high)}]  (hardware = rho x simulation "
                   "+ discrepancy)")
     console.print(f"discrepancy scale {num(fit.discrepancy_scale)} (objective units); "
-                  f"offset {num(fit.objective_model.offset_, '+.3g')}; "
-                  f"hardware noise sd {num(fit.objective_model.hardware_noise_sd_)}")
+                  f"offset {num(fit.offset, '+.3g')}; "
+                  f"hardware noise sd {num(fit.hardware_noise_sd)}")
     table = Table(title=f"leave-one-out over {fit.n_hardware} hardware trial(s)", title_justify="left")
     for column in ("model", "RMSE (objective units)", "mean log predictive density"):
         table.add_column(column)
@@ -114,7 +116,8 @@ def prior_command(scenario: str, store_path: str, json_path: str | None, seed: i
         table.add_row(label, num(row["rmse"]), num(row["log_predictive_density"], ".3f"))
     console.print(table)
     console.print(f"fit time {fit.fit_seconds:.1f} s; simulation level "
-                  f"{type(fit.objective_model.low_).__name__}; stored as model {fit.model_id}; seed {fit.seed}")
+                  f"{fit.simulation_level}{' (reused: the sweep has not changed)' if fit.simulation_reused else ''}; "
+                  f"stored as model {fit.model_id}; seed {fit.seed}")
     print_notes(fit.notes)
     if json_path:
         fit.write_json(json_path)
@@ -146,13 +149,13 @@ def propose_command(scenario: str, store_path: str, count: int, max_fall_risk: f
         table.add_column(f"#{i + 1}", justify="right")
     for name in sc.parameter_names:
         table.add_row(escape(name), escape(result.units[name]),
-                      *[f"{p['params'][name]:.4g}" for p in result.proposals])
-    table.add_row("predicted objective", "", *[f"{p['predicted_objective']:.4g}" for p in result.proposals])
-    table.add_row("predicted sd", "", *[f"{p['predicted_sd']:.3g}" for p in result.proposals])
-    table.add_row("P(fall)", "", *[f"{p['fall_risk']:.3f}" for p in result.proposals])
+                      *[f"{p.params[name]:.4g}" for p in result.proposals])
+    table.add_row("predicted objective", "", *[f"{p.predicted_objective:.4g}" for p in result.proposals])
+    table.add_row("predicted sd", "", *[f"{p.predicted_sd:.3g}" for p in result.proposals])
+    table.add_row("P(fall)", "", *[f"{p.fall_risk:.3f}" for p in result.proposals])
     console.print(table)
     for i, p in enumerate(result.proposals):
-        console.print(f"#{i + 1}: {escape(p['reason'])}")
+        console.print(f"#{i + 1}: {escape(p.reason)}")
     console.print(f"batch: {escape(result.batch_method)}; incumbent {result.incumbent:.4g}; "
                   f"{result.n_hardware} hardware trial(s), {result.n_sim} simulated rollouts; seed {result.seed}")
     print_notes(result.notes)

@@ -301,7 +301,12 @@ class ExactGP:
         # Alg 2.1 line 4: mean = k*^T alpha
         mean = self.y_std_ * (mean + cross.T @ self.alpha_) + self.y_mean_
         if return_cov:
-            cov = self.posterior_covariance(X, basis=basis)
+            prior = self.kernel_(X)
+            if self.basis_train_ is not None:
+                B = self._check_basis(basis, X)
+                prior = prior + B @ self.basis_prior[1] @ B.T
+            # R&W eq. 2.24 (what posterior_covariance does), reusing the cross-covariance computed above
+            cov = posterior_covariance(prior, self.L_, cross) * self.y_std_**2
             if observation:
                 cov[np.diag_indices_from(cov)] += self.noise_ * self.y_std_**2
             return mean, cov

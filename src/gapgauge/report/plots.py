@@ -2,7 +2,7 @@
 
 Every function takes plain numpy arrays (parameters already mapped to the unit cube of the scenario's
 bounds, log axes in log space, see :meth:`gapgauge.scenario.Scenario.to_unit`) and returns the bytes
-of one PNG. Nothing here reads the store or knows the HTML; ``report/html.py`` wires them.
+of one PNG. Nothing here reads the store or knows the HTML; the section modules in ``report/sections/`` wire them.
 
 Binned statistics (fall rate, mean objective) are plain histograms of the sweep: a bin's value is
 the mean over the rollouts that fall in it, every other parameter marginalised over the design.

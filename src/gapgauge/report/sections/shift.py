@@ -7,12 +7,21 @@ from typing import Any
 
 import numpy as np
 
-from ...compare.shift import ShiftReport
+from ...compare.shift import FeatureShift, ShiftReport
 from .. import shift_plots
 from ..inputs import ReportInputs
 from .common import VERDICT_WORDS, Figure, fmt, fmt_interval
 
-DEFAULT_LEVEL = 0.05
+COLUMNS = (
+    "trials",
+    "max |residual|",
+    "bias",
+    "bias interval",
+    "bias / sim sd",
+    "Wasserstein / sim sd",
+    "Kendall tau",
+    "more trials to decide",
+)
 
 
 def verdict_counts(shift: ShiftReport) -> dict[str, int]:
@@ -43,18 +52,18 @@ def mmd_p_value(shift: ShiftReport) -> float:
     return float(shift.joint.mmd_p_value)
 
 
-# (heading, value of a FeatureShift as text) of the shift table
-def _columns() -> tuple[tuple[str, Any], ...]:
-    return (
-        ("trials", lambda f: fmt(f.n_trials)),
-        ("max |residual|", lambda f: fmt(f.max_abs_residual)),
-        ("bias", lambda f: fmt(f.bias)),
-        ("bias interval", lambda f: fmt_interval(f.bias_test_interval)),
-        ("bias / sim sd", lambda f: fmt(f.bias_sd_units)),
-        ("Wasserstein / sim sd", lambda f: fmt(f.wasserstein_sd_units)),
-        ("Kendall tau", lambda f: fmt(None if f.rank is None else f.rank.kendall)),
-        ("more trials to decide", lambda f: fmt(f.more_trials)),
-    )
+def _cells(f: FeatureShift) -> list[str]:
+    """One row of the shift table, in the order of :data:`COLUMNS`."""
+    return [
+        fmt(f.n_trials),
+        fmt(f.max_abs_residual),
+        fmt(f.bias),
+        fmt_interval(f.bias_test_interval),
+        fmt(f.bias_sd_units),
+        fmt(f.wasserstein_sd_units),
+        fmt(None if f.rank is None else f.rank.kendall),
+        fmt(f.more_trials),
+    ]
 
 
 def _joint_rows(shift: ShiftReport) -> list[tuple[str, str]]:
@@ -133,19 +142,18 @@ def shift_section(inputs: ReportInputs) -> dict[str, Any] | None:
     shift = inputs.shift
     if shift is None:
         return None
-    columns = _columns()
     rows = [
         {
             "name": f.name,
             "verdict": VERDICT_WORDS.get(f.verdict, f.verdict),
             "verdict_class": f.verdict if f.verdict in VERDICT_WORDS else "undecided",
-            "cells": [cell(f) for _, cell in columns],
+            "cells": _cells(f),
             "detail": f.reason,
         }
         for f in shift.features
     ]
     return {
-        "columns": [label for label, _ in columns],
+        "columns": list(COLUMNS),
         "rows": rows,
         "joint": _joint_rows(shift),
         "objective": _objective_rows(shift),
