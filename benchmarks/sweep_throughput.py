@@ -44,13 +44,13 @@ import mujoco.rollout
 import numpy as np
 
 from gapgauge import load_scenario
+from gapgauge.app.sweep import sweep
 from gapgauge.records import RolloutBatch
 from gapgauge.sim.controls import CONTROL_SPEC, STATE_SPEC, build_controls, control_size, initial_state
 from gapgauge.sim.design import make_design
 from gapgauge.sim.model import _load, build_models
 from gapgauge.sim.physics import draw_physics
 from gapgauge.sim.rollout import SUB_BATCH
-from gapgauge.app.sweep import sweep
 from gapgauge.store import Store
 
 ROOT = Path(__file__).resolve().parents[1]

@@ -9,11 +9,11 @@ import numpy as np
 import pytest
 from click.testing import CliRunner
 
+from gapgauge.app.ingest import ingest
 from gapgauge.cli import main
 from gapgauge.sim.physics import draw_physics
 from gapgauge.sim.standin import run_standin
 from gapgauge.store import Store
-from gapgauge.app.ingest import ingest
 from test_logs_support import ROOT, make_scenario
 
 ZERO_PROFILE = """

@@ -19,8 +19,7 @@ from click.testing import CliRunner
 from gapgauge import load_scenario
 from gapgauge.cli import main
 from gapgauge.records import TrialRecord
-from gapgauge.store import Store
-from gapgauge.store import check_store
+from gapgauge.store import Store, check_store
 from test_robust_support import ROOT, fake_batch
 
 PLANNED = 24

@@ -18,7 +18,8 @@ import pytest
 
 from gapgauge import StoreError, load_scenario
 from gapgauge.sim.standin import run_standin
-from gapgauge.store import Store, db
+from gapgauge.store import Store
+from gapgauge.store import connection as db
 from test_robust_support import ROOT, fake_batch, gapgauge, integrity, make_project, run, scalar, wait_until
 
 PLANNED = 400

@@ -16,8 +16,8 @@ import pytest
 from click.testing import CliRunner
 
 from gapgauge import load_scenario
-from gapgauge.cli import main
 from gapgauge.app.prior import fit_prior
+from gapgauge.cli import main
 from gapgauge.sim.rollout import simulate
 from gapgauge.store import Store
 from test_robust_support import make_project

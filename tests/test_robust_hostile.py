@@ -20,13 +20,13 @@ import pytest
 from click.testing import CliRunner
 
 from gapgauge import ScenarioError, load_scenario
+from gapgauge.app.ingest import ingest
+from gapgauge.app.report import write_report
 from gapgauge.cli import main
 from gapgauge.errors import LogError
-from gapgauge.records import TrialRecord
-from gapgauge.app.report import write_report
-from gapgauge.store import Store
-from gapgauge.app.ingest import ingest
 from gapgauge.logs import read_log
+from gapgauge.records import TrialRecord
+from gapgauge.store import Store
 from test_logs_support import make_scenario, sidecar, table, write_log
 from test_report_support import build_store
 from test_robust_support import make_project, run

@@ -18,11 +18,10 @@ import numpy as np
 import pytest
 
 from gapgauge import load_scenario
-from gapgauge.sim.standin import run_standin
-from gapgauge.app.sweep import sweep
-from gapgauge.store import Store
-from gapgauge.store import check_store
 from gapgauge.app.ingest import ingest
+from gapgauge.app.sweep import sweep
+from gapgauge.sim.standin import run_standin
+from gapgauge.store import Store, check_store
 from test_robust_support import assert_same_rows, gapgauge, integrity, make_project, run, scalar, sweep_rows, wait_until
 
 PLANNED = 480
@@ -82,14 +81,18 @@ def test_a_sweep_killed_four_times_at_random_moments_ends_with_the_reference_row
     assert count() == 0 and scalar(store, "SELECT status FROM runs") == "running"
     assert integrity(store) == "ok"
 
-    # 2-4: after a chunk was committed, a random moment later: between chunks or inside the next one
+    # 2-4: after two chunks were committed, a random moment later: between chunks or inside the next one.
+    # The moment is a random fraction of the time the second chunk took, so that the kill lands while
+    # the sweep runs however fast this machine simulates (a fixed delay let a fast machine finish first).
     seen = []
     for _ in range(3):
         before = count()
         proc = subprocess.Popen(sweep_command(project, store, CHUNK), stdout=subprocess.DEVNULL,
                                 stderr=subprocess.DEVNULL)
         assert wait_until(proc, lambda before=before: count() > before)
-        time.sleep(rng.uniform(0.0, 0.4))
+        first = time.monotonic()
+        assert wait_until(proc, lambda before=before: count() > before + CHUNK)
+        time.sleep(rng.uniform(0.0, 1.0) * (time.monotonic() - first))
         assert kill(proc) == -signal.SIGKILL, "the kill must land while the sweep runs"
         seen.append(count())
         assert before < seen[-1] < PLANNED and seen[-1] % CHUNK == 0  # whole chunks only

@@ -10,9 +10,9 @@ import numpy as np
 import pytest
 
 from gapgauge.errors import GapgaugeError
+from gapgauge.logs import read_log
 from gapgauge.sim.rollout import simulate
 from gapgauge.sim.standin import load_params_file, load_profile, run_standin, safe_design
-from gapgauge.logs import read_log
 from gapgauge.units import UNITS
 from test_logs_support import ROOT, make_scenario
 

@@ -22,8 +22,8 @@ import pytest
 from click.testing import CliRunner
 
 from gapgauge import load_scenario
-from gapgauge.cli import main
 from gapgauge.app.sweep import sweep
+from gapgauge.cli import main
 from gapgauge.store import Store
 
 ROOT = Path(__file__).resolve().parents[1]

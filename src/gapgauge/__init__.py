@@ -8,11 +8,10 @@ from __future__ import annotations
 import importlib
 from typing import Any
 
-from .version import __version__
-
 from .errors import GapgaugeError, LogError, ModelError, ScenarioError, StoreError
 from .scenario import Scenario, load_scenario
 from .trajectory import Trajectory
+from .version import __version__
 
 # public name -> "module:attribute", imported on first access
 _LAZY = {

@@ -176,7 +176,8 @@ class Connection:
         raise AssertionError("unreachable")
 
     def _damaged(self, exc: sqlite3.Error) -> StoreError:
-        return StoreError(f"{self.path}: SQLite cannot use the store ({exc}); check it (the store health check) "
+        return StoreError(f"{self.path}: SQLite cannot use the store ({exc}); run the store health check "
+                          "(gapgauge store check) "
                           "and restore the file from a backup if it reports damage")
 
     def _write(self, body: Callable[[sqlite3.Connection], T]) -> T:
