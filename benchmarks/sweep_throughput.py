@@ -17,14 +17,19 @@ In one process:
    (a burst of load in one phase moves the pooled figure more than the median); process CPU time is
    reported too (its ratio is the overhead alone, whatever the load: the cost of our Python, not its
    overlap);
-3. reading the rollouts back from a store (``Store.rollouts``) at ``--read-rows`` rows.
+3. reading the rollouts back from a store (``Store.rollouts``) at ``--read-rows`` rows;
+4. the callable-controller rows (:mod:`callable_throughput`, ``--callable-rollouts``; 0 skips): the sweep
+   with the built-in controller's law written as a callable, at 500 Hz and 100 Hz, against the built-in.
 
-Prints both rates and their ratio; the last line is one JSON object with ``sweep_rollouts_per_s``,
-``bare_rollouts_per_s``, ``ratio`` and ``peak_memory_mb`` (plus context). Targets: ratio >= 0.8,
-peak memory < 1 GiB.
+Each scenario named with ``--scenario`` (any scenario; by default the bundled planar body's
+push_recovery and the second body's biped_push, a 3-D biped with ten actuated joints) is measured in
+turn. Prints both rates and their ratio per scenario; the last line is one JSON object with
+``sweep_rollouts_per_s``, ``bare_rollouts_per_s``, ``ratio`` and ``peak_memory_mb`` (plus context) of the
+first, and every scenario's under ``scenarios``. Targets: ratio >= 0.8, peak memory < 1 GiB.
 
     .venv/bin/python benchmarks/sweep_throughput.py               # 10^4 rollouts
     .venv/bin/python benchmarks/sweep_throughput.py --quick       # 500 rollouts, a smoke run
+    .venv/bin/python benchmarks/sweep_throughput.py --scenario /path/to/your_robot.toml
 """
 
 from __future__ import annotations
@@ -42,6 +47,10 @@ from pathlib import Path
 import mujoco
 import mujoco.rollout
 import numpy as np
+
+# the callable-controller rows: a script beside this one (benchmarks/ is on the path when run as a script)
+from callable_throughput import measure as measure_callable
+from callable_throughput import print_rows as print_callable_rows
 
 from gapgauge import load_scenario
 from gapgauge.app.sweep import sweep
@@ -64,7 +73,7 @@ def peak_rss_mb() -> float:
 def bare_seconds(scenario, n: int, seed: int, nthread: int) -> tuple[float, float]:
     """Wall and process CPU seconds of bare ``mujoco.rollout`` over the sweep's own models and inputs
     (``n`` rollouts of the sweep with this seed)."""
-    base, _ = _load(scenario.model_path)
+    base, _ = _load(scenario)
     nstep = scenario.task.nstep
     params = make_design(scenario, n, "sobol", seed)
     size = min(SUB_BATCH, n)
@@ -106,24 +115,13 @@ def read_rate(scenario, rows: int, folder: Path) -> float:
         start = time.perf_counter()
         batch = store.rollouts(scenario.content_hash)
         seconds = time.perf_counter() - start
-    assert len(batch) == rows
+    assert len(batch) == rows, (len(batch), rows)
     return rows / seconds
 
 
-def main() -> None:
-    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    parser.add_argument("--rollouts", type=int, default=10_000, help="rollouts in each phase (default 10^4)")
-    parser.add_argument("--quick", action="store_true", help="a small run: 500 rollouts, 10^4 rows read")
-    parser.add_argument("--workers", type=int, default=os.cpu_count() or 1, help="simulation threads")
-    parser.add_argument("--chunk-size", type=int, default=None, help="sweep chunk size (default the sweep's)")
-    parser.add_argument("--read-rows", type=int, default=100_000, help="rows in the store-read phase")
-    parser.add_argument("--rounds", type=int, default=8, help="alternations of the two phases (default 8)")
-    parser.add_argument("--scenario", default=str(ROOT / "scenarios" / "push_recovery.toml"))
-    args = parser.parse_args()
-    n = 500 if args.quick else args.rollouts
-    read_rows = 10_000 if args.quick else args.read_rows
-    scenario = load_scenario(args.scenario)
-
+def measure(scenario, n: int, args: argparse.Namespace, read_rows: int) -> dict:
+    """One scenario's figures: the sweep against bare ``mujoco.rollout`` in alternating rounds, the peak
+    memory so far, and the store read rate (printed, and returned as the JSON-ready dict)."""
     # Rounds alternate the two phases so that load from other users of a shared machine falls on both
     # alike; each round is its own sweep run (seed = round), and bare runs that run's models and inputs.
     load_before = os.getloadavg()[0]
@@ -149,7 +147,8 @@ def main() -> None:
     sweep_rate, bare = n / sweep_wall, n / bare_wall
     ratio = sweep_rate / bare
     cpu_ratio = bare_cpu / sweep_cpu
-    print(f"scenario {scenario.name}: {n} rollouts of {scenario.task.nstep} steps, {args.workers} thread(s), "
+    print(f"scenario {scenario.name}: {n} rollouts of {scenario.task.nstep} steps, {len(scenario.joint_names)} "
+          f"actuated joints, {'3-D' if scenario.lateral else 'planar'}, {args.workers} thread(s), "
           f"{platform.processor() or platform.machine()}, {os.cpu_count()} cores")
     print(f"sweep end to end : {sweep_rate:8.1f} rollouts/s  ({sweep_wall:.1f} s in {rounds} round(s); "
           f"{counts['ok']} ok, {counts['fell']} fell, {counts['diverged']} diverged)")
@@ -159,7 +158,8 @@ def main() -> None:
     print(f"CPU-time ratio   : {cpu_ratio:8.3f}  (bare CPU s / sweep CPU s: the overhead alone, whatever the load)")
     print(f"peak memory      : {peak:8.1f} MB (target < 1024)")
     print(f"store read       : {reads:8.0f} rows/s ({read_rows} rows in {read_rows / reads:.2f} s)")
-    print(json.dumps({
+    return {
+        "scenario": scenario.name, "joints": len(scenario.joint_names), "lateral": scenario.lateral,
         "sweep_rollouts_per_s": round(sweep_rate, 2), "bare_rollouts_per_s": round(bare, 2),
         "ratio": round(ratio, 4), "peak_memory_mb": round(peak, 1), "rollouts": n, "threads": args.workers,
         "nstep": scenario.task.nstep, "cpu_ratio": round(cpu_ratio, 4), "rounds": rounds,
@@ -167,7 +167,35 @@ def main() -> None:
         "load_average_1min": [round(load_before, 2), round(os.getloadavg()[0], 2)],  # at start and end
         "store_read_rows_per_s": round(reads), "store_read_rows": read_rows,
         "date": datetime.now(timezone.utc).date().isoformat(),
-    }))
+    }
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--rollouts", type=int, default=10_000, help="rollouts in each phase (default 10^4)")
+    parser.add_argument("--quick", action="store_true", help="a small run: 500 rollouts, 10^4 rows read")
+    parser.add_argument("--workers", type=int, default=os.cpu_count() or 1, help="simulation threads")
+    parser.add_argument("--chunk-size", type=int, default=None, help="sweep chunk size (default the sweep's)")
+    parser.add_argument("--read-rows", type=int, default=100_000, help="rows in the store-read phase")
+    parser.add_argument("--rounds", type=int, default=8, help="alternations of the two phases (default 8)")
+    parser.add_argument("--scenario", action="append", default=None,
+                        help="scenario to measure (any scenario; repeat for several); default the bundled "
+                             "push_recovery.toml (planar body) and biped_push.toml (the second body, 3-D)")
+    parser.add_argument("--callable-rollouts", type=int, default=2_000,
+                        help="rollouts per phase of the callable-controller rows (callable_throughput.py; 0 skips)")
+    args = parser.parse_args()
+    n = 500 if args.quick else args.rollouts
+    read_rows = 10_000 if args.quick else args.read_rows
+    paths = args.scenario or [str(ROOT / "scenarios" / name) for name in ("push_recovery.toml", "biped_push.toml")]
+    figures = [measure(load_scenario(path), n, args, read_rows) for path in paths]
+    extra = {}
+    if args.callable_rollouts > 0:  # the callable controller against the built-in, bundled planar body
+        extra["callable"] = measure_callable(200 if args.quick else args.callable_rollouts, args.workers,
+                                             min(args.rounds, 4), args.chunk_size)
+        print_callable_rows(extra["callable"])
+    # the last line is one JSON object: the first scenario's figures at the top level (as before), and
+    # every scenario's under "scenarios"
+    print(json.dumps({**figures[0], "scenarios": figures, **extra}))
 
 
 if __name__ == "__main__":

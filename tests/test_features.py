@@ -7,6 +7,7 @@ ellipse; Hof, Gazendam and Sinke (2005) J. Biomech. 38:1-8 for the extrapolated 
 
 from __future__ import annotations
 
+import dataclasses
 import math
 import warnings
 
@@ -40,6 +41,9 @@ def standing_trajectory(nbatch: int = 3, nstep: int = 400, onset: float = 0.2, s
     ch["heel_force"] = 200.0 + wiggle(40.0)
     ch["toe_force"] = 192.0 + wiggle(40.0)
     ch["body_contact"] = np.zeros((nbatch, nstep))
+    ch["heel_y"] = 0.01 + wiggle(0.01)  # medio-lateral channels, read by the 3-D features only
+    ch["toe_y"] = -0.01 + wiggle(0.01)
+    ch["com_y"] = wiggle(0.01)
     for j in ("ankle", "knee", "hip"):
         ch[f"{j}_torque"] = wiggle(30.0)
         ch[f"{j}_rate"] = wiggle(1.0)
@@ -370,3 +374,87 @@ def test_compute_features_leaves_the_trajectory_untouched():
     F.compute_features(traj, SETTINGS, F.AVAILABLE_FEATURES)
     for name, values in before.items():
         np.testing.assert_array_equal(traj.channels[name], values, err_msg=name)
+
+
+# ---- 3-D models: medio-lateral and 2-D forms (Prieto et al. 1996) -------------------------------
+
+# A hand-made planar COP trace, m: anterior-posterior (AP) and medio-lateral (ML), six samples 0.1 s apart.
+AP = np.array([[0.00, 0.03, 0.03, 0.00, 0.00, 0.04]])
+ML = np.array([[0.00, 0.00, 0.04, 0.04, 0.01, 0.01]])
+
+
+def test_cop_path_length_2d_is_prieto_total_excursion_of_the_resultant():
+    # Prieto 1996 TOTEX = sum_i sqrt(dAP^2 + dML^2); steps by hand: (0.03, 0) 0.03, (0, 0.04) 0.04,
+    # (-0.03, 0) 0.03, (0, -0.03) 0.03, (0.04, 0) 0.04: total 0.17 m
+    assert F.cop_path_length_2d(AP, ML)[0] == pytest.approx(0.17, abs=1e-12)
+    # ... and MVELO = TOTEX / duration (0.5 s)
+    assert F.cop_mean_velocity_2d(COP_T, AP, ML)[0] == pytest.approx(0.34, abs=1e-12)
+
+
+def test_medio_lateral_forms_are_the_one_axis_measures_of_the_ml_trace():
+    # Prieto 1996 TOTEX_ML = sum |dML| = 0 + 0.04 + 0 + 0.03 + 0 = 0.07; RANGE_ML = 0.04 - 0.00
+    assert F.cop_path_length(ML)[0] == pytest.approx(0.07, abs=1e-12)
+    assert F.cop_range(ML)[0] == pytest.approx(0.04, abs=1e-12)
+
+
+def test_cop_rms_and_mean_distance_2d_are_prieto_rdist_and_mdist():
+    # Prieto 1996: RD = sqrt(AP^2 + ML^2) of the mean-removed trace; RDIST = sqrt(mean RD^2), MDIST = mean RD.
+    # By hand: mean AP = 0.10 / 6, mean ML = 0.10 / 6.
+    ap = AP[0] - 0.1 / 6
+    ml = ML[0] - 0.1 / 6
+    rd = [math.sqrt(a * a + m * m) for a, m in zip(ap, ml, strict=True)]
+    assert F.cop_rms_distance_2d(AP, ML)[0] == pytest.approx(math.sqrt(sum(r * r for r in rd) / 6), rel=1e-12)
+    assert F.cop_mean_distance_2d(AP, ML)[0] == pytest.approx(sum(rd) / 6, rel=1e-12)
+
+
+def test_horizontal_sway_area_of_a_circle_is_the_chi2_ellipse_of_its_covariance():
+    # A trace evenly around a circle of radius r has covariance (r^2 / 2) I (n / (n - 1) with the n - 1
+    # divisor), so the 95% prediction ellipse has area pi * chi2_{0.95,2} * r^2 / 2 * n / (n - 1)
+    # (Schubert and Kirchner 2014; chi2 quantile from scipy).
+    n, r = 400, 0.02
+    angle = np.arange(n) * 2 * math.pi / n
+    x, y = r * np.cos(angle)[None, :], r * np.sin(angle)[None, :]
+    expected = math.pi * chi2.ppf(0.95, 2) * r * r / 2 * n / (n - 1)
+    assert F.sway_area_2d(x, y)[0] == pytest.approx(expected, rel=1e-9)
+    assert F.cop_sway_area(x, y)[0] == pytest.approx(expected, rel=1e-9)
+
+
+def test_cop_of_several_contact_groups_is_their_force_weighted_position():
+    # Statics: the resultant of parallel forces acts at sum F_i x_i / sum F_i; by hand for 100, 300, 100 N
+    # at 0.0, 0.1, 0.2 m: (0 + 30 + 20) / 500 = 0.1 m.
+    forces = [np.array([[100.0]]), np.array([[300.0]]), np.array([[100.0]])]
+    where = [np.array([[0.0]]), np.array([[0.1]]), np.array([[0.2]])]
+    assert F.cop_from_contacts(forces, where)[0, 0] == pytest.approx(0.1, abs=1e-15)
+    # with two groups it is the heel-toe lever rule, to the last bit
+    heel, toe = np.array([[210.0, 3.0]]), np.array([[97.0, 1.0]])
+    hx, tx = np.array([[-0.05, -0.04]]), np.array([[0.14, 0.15]])
+    np.testing.assert_array_equal(F.cop_from_contacts([heel, toe], [hx, tx]), F.cop_from_foot_forces(heel, toe, hx, tx))
+
+
+def test_a_3d_trace_gives_the_lateral_features_and_a_planar_one_names_the_missing_channel():
+    traj = standing_trajectory(nbatch=2, seed=5)
+    lateral = dataclasses.replace(SETTINGS, lateral=True)
+    got = F.compute_features(traj, lateral, ["cop_range_ml", "cop_path_length_2d", "sway_area_2d"])
+    cop_y = F.cop_from_contacts([traj.channels["heel_force"], traj.channels["toe_force"]],
+                                [traj.channels["heel_y"], traj.channels["toe_y"]])
+    start = F.onset_index(traj.t, traj.onset)
+    assert got["cop_range_ml"] == pytest.approx(np.ptp(F.hold_last_defined(cop_y)[:, start:], axis=1))
+    del traj.channels["heel_y"]
+    with pytest.raises(MissingChannelError, match="cop_range_ml.*heel_y"):
+        F.compute_features(traj, lateral, ["cop_range_ml"])
+
+
+def test_torque_and_work_sum_over_every_actuated_joint_named_in_the_settings():
+    # Five joints with different names: peak |torque| over them all; work = sum of each joint's.
+    traj = standing_trajectory(nbatch=2, seed=6)
+    joints = ("left_ankle", "right_ankle", "left_hip", "right_hip", "waist")
+    for j, name in enumerate(joints):
+        traj.channels[f"{name}_torque"] = traj.channels["ankle_torque"] * (j + 1)
+        traj.channels[f"{name}_rate"] = traj.channels["ankle_rate"]
+    settings = dataclasses.replace(SETTINGS, joints=joints)
+    got = F.compute_features(traj, settings, ["peak_joint_torque", "positive_work"])
+    one = F.compute_features(traj, dataclasses.replace(SETTINGS, joints=("ankle",)), ["peak_joint_torque",
+                                                                                       "positive_work"])
+    # torque scaled by j + 1 with the same rate: peak x 5, work x (1 + 2 + 3 + 4 + 5) = x 15
+    assert got["peak_joint_torque"] == pytest.approx(5 * one["peak_joint_torque"], rel=1e-12)
+    assert got["positive_work"] == pytest.approx(15 * one["positive_work"], rel=1e-12)

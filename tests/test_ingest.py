@@ -151,3 +151,106 @@ def test_cli_standin_writes_logs_labelled_synthetic(tmp_path):
     assert result.exit_code == 0, result.output
     assert "SYNTHETIC" in result.output
     assert json.loads(next(tmp_path.glob("*.json")).read_text())["synthetic"] is True
+
+
+# ---- one transaction per trial; flags and placement carried to info and shift -------------------------
+
+
+class Recorder:
+    """The store's connection, recording each write transaction's statements (BEGIN IMMEDIATE .. COMMIT)."""
+
+    def __init__(self, conn):
+        self._conn, self.transactions, self._open = conn, [], None
+
+    def execute(self, sql, *args):
+        if sql == "BEGIN IMMEDIATE":
+            self._open = []
+        elif sql == "COMMIT" and self._open is not None:
+            self.transactions.append(self._open)
+            self._open = None
+        elif self._open is not None:
+            self._open.append(sql)
+        return self._conn.execute(sql, *args)
+
+    def executemany(self, sql, *args):
+        if self._open is not None:
+            self._open.append(sql)
+        return self._conn.executemany(sql, *args)
+
+    def __getattr__(self, name):
+        return getattr(self._conn, name)
+
+
+def test_a_trial_is_written_in_the_same_transaction_as_its_matched_rollouts_and_links(tmp_path, scenario, logs):
+    store = Store(tmp_path / "store.sqlite")
+    store._conn = recorder = Recorder(store._conn)
+    ingest(scenario, store, logs, matches=3, progress=False)
+    with_trial = [tx for tx in recorder.transactions if any("INTO trials" in sql for sql in tx)]
+    assert len(with_trial) == 2  # one per trial
+    for tx in with_trial:
+        assert any("INTO rollouts" in sql for sql in tx) and any("INTO matches" in sql for sql in tx)
+    assert not any("INTO matches" in sql for tx in recorder.transactions if tx not in with_trial for sql in tx)
+
+
+def flagged_copy(src, folder, name):
+    """A copy of a stand-in log whose heel force reads 5000 N in one sample (beyond [-50, 3000] N)."""
+    from test_logs_support import convert_log
+
+    def spike(values):
+        values = values.copy()
+        values[len(values) // 2] = 5000.0
+        return values
+
+    return convert_log(src, folder / f"{name}.csv", {"heel_fz": spike})
+
+
+@pytest.fixture(scope="module")
+def mixed_store(tmp_path_factory, scenario, logs):
+    """A store with the two stand-in trials, a copy of one with a flagged heel force, and a ROS 2 bag whose
+    onset cannot be placed (a still log: nothing like the push in it)."""
+    from test_logs_bag import BAG_TABLE, write_bag
+
+    folder = tmp_path_factory.mktemp("mixed")
+    bag_scenario = make_scenario(folder / "sc", append=BAG_TABLE)
+    bag = write_bag(folder / "still_bag", bag_scenario, n=1600)
+    flagged = flagged_copy(logs[1], folder, "flagged")
+    path = folder / "store.sqlite"
+    with Store(path) as store:
+        summary = ingest(bag_scenario, store, [*logs, flagged, bag], matches=3, progress=False)
+    assert not summary.failed, summary.failed
+    return bag_scenario, path, summary
+
+
+def test_an_unusual_value_and_an_unplaced_onset_are_stored_and_said_at_ingest(mixed_store):
+    _, _, summary = mixed_store
+    flagged, bag = summary.stored[2], summary.stored[3]
+    assert any("heel_force: 1 sample(s) beyond the plausible range" in f for f in flagged.flags)
+    assert "onset not placed" in bag.alignment and any("left out of the shift" in w for w in bag.warnings)
+
+
+def test_shift_leaves_out_the_unplaced_trial_with_the_reason_and_flagged_channels_on_request(mixed_store):
+    from gapgauge.app.shift import assess_shift
+
+    sc, path, summary = mixed_store
+    bag_id, flagged_id = summary.stored[3].trial_id, summary.stored[2].trial_id
+    kept = assess_shift(sc, path, seed=0)
+    assert bag_id not in kept.trial_ids and flagged_id in kept.trial_ids
+    assert any(f"trial {bag_id} was left out" in n and "give disturbance_at" in n for n in kept.notes)
+    assert any(f"{flagged_id} (heel_force)" in n for n in kept.notes)
+    row = kept.trial_ids.index(flagged_id)
+    names = list(sc.features.names)
+    assert np.isfinite(kept.hardware_values[row, names.index("cop_path_length")])
+    dropped = assess_shift(sc, path, seed=0, leave_out_flagged=True)
+    assert dropped.leave_out_flagged and np.isnan(dropped.hardware_values[row, names.index("cop_path_length")])
+    assert np.isfinite(dropped.hardware_values[row, names.index("peak_com_excursion")])  # reads com_x only
+    assert any(f"trial {flagged_id}:" in n and "cop_path_length" in n for n in dropped.notes)
+
+
+def test_cli_info_lists_the_flagged_and_the_unplaced_trials(mixed_store):
+    _, path, summary = mixed_store
+    result = CliRunner().invoke(main, ["info", "--store", str(path)])
+    assert result.exit_code == 0, result.output
+    text = " ".join(result.output.split())
+    # the still bag is flagged too: its constant joint torques are far from the simulation's
+    assert "2 flagged, 1 not placed in time" in text, [i.flags for i in summary.stored]
+    assert "flagged.csv" in text and "still_bag" in text and "not placed" in text

@@ -178,15 +178,14 @@ def test_sampling_slower_than_min_rate_is_refused(tmp_path):
     _refused(sc, write_log(tmp_path, header, rows, sidecar(sc)), "trial_001.csv", "slower than min_rate_hz")
 
 
-def test_value_beyond_plausible_range_is_refused(tmp_path, scenario):
+def test_value_beyond_plausible_range_is_kept_with_a_flag_naming_the_sample(tmp_path, scenario):
     header, rows = table()
-    rows[30][header.index("heel_fz")] = "5000"  # plausible heel_force is [-50, 3000] N
-    _refused(
-        scenario,
-        write_log(tmp_path, header, rows, sidecar(scenario)),
-        "trial_001.csv:32:11",
-        "plausible range",
-    )
+    rows[30][header.index("heel_fz")] = "5000"  # plausible heel_force is [-50, 3000] N ([hardware.plausible])
+    rows[31][header.index("heel_fz")] = "3100"
+    log = read_log(scenario, write_log(tmp_path, header, rows, sidecar(scenario)))
+    (flag,) = [f for f in log.flags if f.channel == "heel_force"]
+    assert (flag.kind, flag.count, flag.worst) == ("plausible", 2, 5000.0)  # N: the unit declared is N
+    assert flag.where.endswith("trial_001.csv:32:11") and "plausible range" in flag.detail
 
 
 def test_degrees_in_a_radian_column_get_a_hint(tmp_path):

@@ -6,6 +6,7 @@ reader is checked against numbers we put in by hand.
 
 from __future__ import annotations
 
+import csv
 import json
 import math
 import re
@@ -109,3 +110,30 @@ def write_log(
 
 
 DEG = math.pi / 180.0  # by definition of the degree (SI brochure, 9th ed., table 8)
+
+
+def convert_log(src: Path, dst: Path, change: dict[str, object], sidecar_edit: dict | None = None) -> Path:
+    """Copy a CSV log and its sidecar to ``dst``, applying ``change`` (column -> function of the column's
+    values ``(n,)``) to the numbers: a test's own converter, to make a wrong-unit or a re-clocked log."""
+    with src.open(newline="", encoding="utf-8") as fh:
+        rows = list(csv.reader(fh))
+    header, data = rows[0], np.array(rows[1:], dtype=float)
+    for column, fn in change.items():
+        j = header.index(column)
+        data[:, j] = fn(data[:, j])
+    dst.parent.mkdir(parents=True, exist_ok=True)
+    with dst.open("w", newline="", encoding="utf-8") as fh:
+        writer = csv.writer(fh)
+        writer.writerow(header)
+        writer.writerows([[repr(float(v)) for v in row] for row in data])
+    side = json.loads(src.with_suffix(".json").read_text())
+    side.update(sidecar_edit or {})
+    dst.with_suffix(".json").write_text(json.dumps(side))
+    return dst
+
+
+def csv_columns(path: Path) -> tuple[list[str], np.ndarray]:
+    """Header and numbers of a CSV log, read with the standard library."""
+    with path.open(newline="", encoding="utf-8") as fh:
+        rows = list(csv.reader(fh))
+    return rows[0], np.array(rows[1:], dtype=float)

@@ -7,6 +7,7 @@ and the margin of stability is a plane.
 
 from __future__ import annotations
 
+import sqlite3
 from pathlib import Path
 
 import numpy as np
@@ -163,3 +164,63 @@ def test_a_new_trial_refits_only_the_hardware_level(tmp_path: Path) -> None:
     for a, b in zip(second.predict(X), scratch.predict(X), strict=True):
         np.testing.assert_allclose(a, b, rtol=1e-10, atol=1e-12)
     np.testing.assert_allclose(second.fall_probability(X), scratch.fall_probability(X), rtol=1e-10, atol=1e-12)
+
+
+def test_a_new_trial_is_answered_without_reading_the_sweep(tmp_path: Path, monkeypatch) -> None:
+    # issue 19: the store's run counts say the sweep is unchanged, so its 10^5-10^6 rows are neither read
+    # nor hashed again; the answer is still the full fit's (outside check: a fit from scratch, same seed)
+    scenario, store = make_store(tmp_path / "store.sqlite", n_trials=3, seed=4)
+    first = fit_prior(scenario, store, seed=0)
+    add_trials(scenario, store, range(3, 4), np.random.default_rng(2), seed=4)
+
+    def refuse(*args, **kwargs):
+        raise AssertionError("the sweep's rows were read")
+
+    with monkeypatch.context() as patch:
+        patch.setattr(Store, "rollouts", refuse)
+        second = current_prior(scenario, store)
+        again = fit_prior(scenario, store, seed=0)  # the prior job too
+    assert second.simulation_reused and again.simulation_reused
+    assert second.n_hardware == first.n_hardware + 1 and second.sweep_state == first.sweep_state
+    scratch = fit_prior_data(scenario, read_prior_data(scenario, store), seed=0)
+    assert (second.simulation_key, second.n_sim, second.n_sim_fall_model) == (
+        scratch.simulation_key, scratch.n_sim, scratch.n_sim_fall_model)
+    assert second.simulation_notes == scratch.simulation_notes
+    X = scenario.from_unit(np.random.default_rng(8).uniform(size=(10, scenario.dim)))
+    for a, b in zip(second.predict(X), scratch.predict(X), strict=True):
+        np.testing.assert_allclose(a, b, rtol=1e-10, atol=1e-12)
+    np.testing.assert_allclose(second.fall_probability(X), scratch.fall_probability(X), rtol=1e-10, atol=1e-12)
+
+
+def test_a_sweep_that_grew_is_read_again_and_its_simulation_level_refitted(tmp_path: Path) -> None:
+    scenario, store = make_store(tmp_path / "store.sqlite", n_trials=2, seed=5)
+    first = current_prior(scenario, store)
+    run = store.start_run("sweep", scenario, seed=99, design="sobol", planned=40, nominal=False)
+    extra = store.rollouts(scenario.content_hash).subset(slice(30, 70))  # stood: rows 25 on are ok
+    store.write_rollouts(run, RolloutBatch(np.arange(40), extra.params, extra.physics, extra.physics_names,
+                                           extra.status, extra.reason, extra.objective, extra.features))
+    second = current_prior(scenario, store)
+    with sqlite3.connect(tmp_path / "store.sqlite") as conn:  # read past the store: what the prior must use
+        standing = conn.execute("SELECT COUNT(*) FROM rollouts WHERE status = 'ok'").fetchone()[0]
+    assert not second.simulation_reused and second.sweep_state != first.sweep_state
+    assert (first.n_sim, second.n_sim) == (N_SIM - 25, standing) and standing == N_SIM - 25 + 40
+
+
+def test_the_sweep_key_changes_when_a_sweep_row_is_added_and_only_then(tmp_path: Path) -> None:
+    scenario, store = make_store(tmp_path / "store.sqlite", n_trials=0, seed=6)
+    h = scenario.content_hash
+    key = store.rollouts_state(h)
+    sweep_run = store.runs(h, kind="sweep")[0].id
+    stored = store.rollouts(h)
+    def count() -> int:  # read past the store, with sqlite3
+        with sqlite3.connect(tmp_path / "store.sqlite") as conn:
+            return conn.execute("SELECT COUNT(*) FROM rollouts").fetchone()[0]
+
+    store.write_rollouts(sweep_run, stored.subset(slice(0, 10)))  # already stored: INSERT OR IGNORE keeps them
+    assert count() == N_SIM and store.rollouts_state(h) == key
+    match = store.start_run("match", scenario, seed=1, design="match", planned=5, nominal=False)
+    store.write_rollouts(match, stored.subset(slice(0, 5)))  # another kind of run: not the sweep's rows
+    assert count() == N_SIM + 5 and store.rollouts_state(h) == key
+    grown = store.start_run("sweep", scenario, seed=7, design="sobol", planned=1, nominal=False)
+    store.write_rollouts(grown, stored.subset(slice(0, 1)))
+    assert count() == N_SIM + 5 + 1 and store.rollouts_state(h) != key

@@ -14,6 +14,7 @@ import base64
 import io
 import itertools
 import json
+import re
 from dataclasses import replace
 from html.parser import HTMLParser
 from pathlib import Path
@@ -25,9 +26,13 @@ from matplotlib.image import imread
 
 from gapgauge.app.report import read_inputs, write_report
 from gapgauge.cli import main
+from gapgauge.compare.budget import BudgetPlan
 from gapgauge.compare.shift import ShiftReport
+from gapgauge.compare.stop import StopRule
 from gapgauge.errors import StoreError
+from gapgauge.quantities import format_number
 from gapgauge.report.inputs import ReportInputs
+from gapgauge.report.sections.calibration import finding
 from gapgauge.report.sections.decision import decide
 from gapgauge.report.sections.sweep import main_effects, ranked_parameters
 from gapgauge.safety import CAUTION
@@ -302,12 +307,19 @@ def test_next_step_follows_the_results(inputs, case, level, command_word):
         )
 
 
-def test_go_quotes_the_budget_p80_with_and_without_the_prior(inputs):
-    budget = inputs.budget
-    budget = replace(
-        budget, with_prior=replace(budget.with_prior, p80=9), cold_start=replace(budget.cold_start, p80=22)
+def booked(budget, with_prior: int | None, cold_start: int | None):
+    """The real budget booking ``with_prior`` and ``cold_start`` trials at its P80 level."""
+    return replace(
+        budget,
+        confidence=0.8,
+        with_prior=replace(budget.with_prior, p80=with_prior, book=with_prior),
+        cold_start=replace(budget.cold_start, p80=cold_start, book=cold_start),
     )
-    ready = replace(inputs, shift=with_verdicts(inputs.shift, CARRY), prior=healthy(inputs.prior), budget=budget)
+
+
+def test_go_quotes_the_budget_p80_with_and_without_the_prior(inputs):
+    ready = replace(inputs, shift=with_verdicts(inputs.shift, CARRY), prior=healthy(inputs.prior),
+                    budget=booked(inputs.budget, 9, 22), proposals=replace(inputs.proposals, stop=None))
     decision = decide(ready)
     n = len(inputs.proposals.proposals)
     assert decision.level == "go" and decision.command is None
@@ -316,11 +328,25 @@ def test_go_quotes_the_budget_p80_with_and_without_the_prior(inputs):
 
 
 def test_a_budget_not_reached_within_its_horizon_is_said_so_not_asked_for_again(inputs):
-    budget = replace(inputs.budget, with_prior=replace(inputs.budget.with_prior, p80=None))
+    budget = booked(inputs.budget, None, None)
     ready = replace(inputs, shift=with_verdicts(inputs.shift, CARRY), prior=healthy(inputs.prior), budget=budget)
     decision = decide(ready)
     assert decision.command is None
     assert f"budget P80 beyond the {budget.max_trials} trials planned for" in decision.next_step
+
+
+def test_a_stop_rule_that_says_stop_ends_tuning_instead_of_more_trials(inputs):
+    """The proposals' stop rule (a probabilistic regret bound, Wilson 2024) outranks the proposals."""
+    stop = StopRule(probability=0.95, epsilon=0.02, level=0.9, stop=True, epsilon_rule="given",
+                    decision="stop: 0.95 probability the current best is within 0.02 of the best (rule: stop at 0.9)")
+    ready = replace(inputs, shift=with_verdicts(inputs.shift, CARRY), prior=healthy(inputs.prior),
+                    proposals=replace(inputs.proposals, stop=stop))
+    decision = decide(ready)
+    assert decision.level == "go" and decision.next_step.startswith("Stop tuning")
+    assert any(stop.decision in r for r in decision.reasons)
+    keep = replace(stop, stop=False, decision="keep tuning: 0.40 probability ...")
+    going = decide(replace(ready, proposals=replace(inputs.proposals, stop=keep)))
+    assert going.next_step.startswith("Go to hardware") and "the stop rule says keep tuning" in going.next_step
 
 
 def test_a_weak_rho_is_not_sold_as_go(inputs):
@@ -395,3 +421,57 @@ def test_main_effects_match_the_analytic_first_order_sobol_indices():
     assert effects == pytest.approx([0.2 * 0.99, 0.8 * 0.99, 0.0], abs=0.01)
     # a U-shaped effect that a rank correlation would miss is still ranked first
     assert ranked_parameters(x, (x[:, 2] - 0.5) ** 2 + 0.1 * x[:, 0], 1) == [2]
+
+
+# ---- the first screen's words agree with the tables below them ------------------------------
+
+
+def test_first_screen_states_the_budget_as_a_number_with_its_target(full, lab):
+    budget = lab[2]["budget"]
+    body = page_text(full[1])
+    book = budget.with_prior.book
+    shown = f"{book} trials" if book is not None else f"> {budget.max_trials} trials"
+    assert shown in body
+    # the target with units: the scenario's success rule (recovery_time <= 2 s) and the objective level
+    assert f"to reach: no fall, recovery time ≤ 2.00 s, objective ≤ {format_number(budget.target.level)}" in body
+
+
+def test_the_key_figures_count_the_verdicts_as_the_shift_table_tags_them(full):
+    _, text = full
+    table = text[text.index('id="shift-table"'):text.index("</table>", text.index('id="shift-table"'))]
+    tags = [" ".join(t.split()) for t in re.findall(r'<span class="tag v-\w+">([^<]+)</span>', table)]
+    card = text[text.index('id="key-figures"'):]
+    card = page_text(card[: card.index("</div>", card.index('class="value"'))])
+    for word in set(tags):
+        assert f"{tags.count(word)} {word}" in card, (word, card)
+
+
+def test_the_calibration_finding_reads_as_the_issue_asks(inputs):
+    """A trunk 16 % heavier than modelled, pinned down, the others at nominal: the sentence of issue 18."""
+    params = [
+        replace(p, estimate=1.16, identifiable=True) if p.name == "trunk_mass_scale"
+        else replace(p, estimate=p.base_nominal)
+        for p in inputs.calibration.parameters
+    ]
+    sentence = finding(replace(inputs.calibration, parameters=params))
+    assert sentence.startswith("The robot behaves as if its trunk were 16 % heavier than modelled")
+    assert "outside the randomised range [0.900, 1.10]" in sentence  # the scenario randomises 0.9 to 1.1
+
+
+def test_detail_tables_and_figures_fold_away(full):
+    _, text = full
+    for inside in ("Joint tests over all features", "Per-feature figures", "How the budget was planned"):
+        at = text.index(inside)
+        assert text.rfind("<details", 0, at) > text.rfind("</details>", 0, at), inside
+    first = text[text.index('id="first-screen"'):text.index("<main>")]
+    assert first.count("<details") == 1  # only the reasons behind the verdict
+
+
+def test_a_result_stored_in_an_older_format_is_left_out_with_the_step_to_run_again(lab, tmp_path, monkeypatch):
+    scenario, store, _ = lab
+    monkeypatch.setattr(BudgetPlan, "schema_version", BudgetPlan.schema_version + 1)  # as a newer gapgauge reads
+    out = write_report(scenario, store, tmp_path / "older.html")
+    budget = next(s for s in out.sections if s.name == "budget")
+    assert not budget.filled and budget.fill_command.startswith("gapgauge budget ")
+    assert "schema version" in budget.note
+    assert "The stored result was left out" in page_text(out.path.read_text(encoding="utf-8"))

@@ -242,11 +242,12 @@ def test_a_huge_array_in_a_scenario_is_refused_with_its_key(tmp_path):
     assert "low" in str(err.value) and "\n" not in str(err.value) and len(str(err.value)) < 600
 
 
-def test_a_model_symlink_that_leaves_the_project_is_refused(tmp_path):
+def test_a_model_symlink_to_elsewhere_loads_the_file_it_points_at(tmp_path):
+    # Models may live anywhere on disk (issue 13): a symlink is followed, and the model that is
+    # simulated (and keyed) is the file it points at.
     project = make_project(tmp_path / "inside")
     outside = tmp_path / "elsewhere" / "planar_body.xml"
     outside.parent.mkdir()
     (tmp_path / "inside" / "models" / "planar_body.xml").rename(outside)
     (tmp_path / "inside" / "models" / "planar_body.xml").symlink_to(outside)
-    with pytest.raises(ScenarioError, match="leaves the scenario's project folder"):
-        load_scenario(project)
+    assert load_scenario(project).model_path == outside.resolve()

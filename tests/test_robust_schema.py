@@ -22,7 +22,7 @@ from test_robust_support import ROOT, fake_batch, integrity, scalar
 
 @pytest.fixture
 def old_store(tmp_path):
-    """A version-1 store with 12 rollouts, and code that has moved on to version 2 (adds a column)."""
+    """A store of the current version (NOW) with 12 rollouts; the tests move the code on to NOW + 1."""
     scenario = load_scenario(ROOT / "scenarios" / "push_recovery.toml")
     path = tmp_path / "lab.sqlite"
     with Store(path) as store:
@@ -35,15 +35,18 @@ def version(path) -> str:
     return scalar(path, "SELECT value FROM meta WHERE key = 'schema_version'")
 
 
+NOW = schema.SCHEMA_VERSION
+
+
 def test_info_on_an_older_store_migrates_it_after_a_backup(old_store, monkeypatch):
-    monkeypatch.setattr(schema, "SCHEMA_VERSION", 2)
-    monkeypatch.setitem(schema.MIGRATIONS, 1, lambda c: c.execute("ALTER TABLE runs ADD COLUMN note TEXT"))
+    monkeypatch.setattr(schema, "SCHEMA_VERSION", NOW + 1)
+    monkeypatch.setitem(schema.MIGRATIONS, NOW, lambda c: c.execute("ALTER TABLE runs ADD COLUMN note TEXT"))
     result = CliRunner().invoke(main, ["info", "--store", str(old_store)])
     assert result.exit_code == 0, result.output
-    backup = old_store.with_name("lab.sqlite.v1.bak")
-    assert version(backup) == "1" and scalar(backup, "SELECT COUNT(*) FROM rollouts") == 12
+    backup = old_store.with_name(f"lab.sqlite.v{NOW}.bak")
+    assert version(backup) == str(NOW) and scalar(backup, "SELECT COUNT(*) FROM rollouts") == 12
     assert integrity(backup) == "ok"
-    assert version(old_store) == "2" and scalar(old_store, "SELECT COUNT(*) FROM rollouts") == 12
+    assert version(old_store) == str(NOW + 1) and scalar(old_store, "SELECT COUNT(*) FROM rollouts") == 12
 
 
 def test_a_migration_that_fails_leaves_the_store_as_it_was_and_a_backup(old_store, monkeypatch):
@@ -51,23 +54,25 @@ def test_a_migration_that_fails_leaves_the_store_as_it_was_and_a_backup(old_stor
         conn.execute("ALTER TABLE runs ADD COLUMN note TEXT")  # a first change, then the step dies
         raise sqlite3.OperationalError("disk I/O error")
 
-    monkeypatch.setattr(schema, "SCHEMA_VERSION", 2)
-    monkeypatch.setitem(schema.MIGRATIONS, 1, broken_step)
+    monkeypatch.setattr(schema, "SCHEMA_VERSION", NOW + 1)
+    monkeypatch.setitem(schema.MIGRATIONS, NOW, broken_step)
     with pytest.raises(StoreError):
         Store(old_store)
-    assert version(old_store) == "1"  # rolled back: no half-migrated store
+    assert version(old_store) == str(NOW)  # rolled back: no half-migrated store
     assert scalar(old_store, "SELECT COUNT(*) FROM pragma_table_info('runs') WHERE name = 'note'") == 0
     assert scalar(old_store, "SELECT COUNT(*) FROM rollouts") == 12 and integrity(old_store) == "ok"
-    assert version(old_store.with_name("lab.sqlite.v1.bak")) == "1"
+    assert version(old_store.with_name(f"lab.sqlite.v{NOW}.bak")) == str(NOW)
 
 
 def test_a_store_with_no_migration_path_names_the_backup(old_store, monkeypatch):
-    monkeypatch.setattr(schema, "SCHEMA_VERSION", 3)
-    monkeypatch.setitem(schema.MIGRATIONS, 1, lambda c: None)  # 1 -> 2 known, 2 -> 3 missing
+    monkeypatch.setattr(schema, "SCHEMA_VERSION", NOW + 2)
+    monkeypatch.setitem(schema.MIGRATIONS, NOW, lambda c: None)  # NOW -> NOW + 1 known, then none
+    monkeypatch.delitem(schema.MIGRATIONS, NOW + 1, raising=False)
     result = CliRunner().invoke(main, ["info", "--store", str(old_store)])
     assert result.exit_code == 2 and isinstance(result.exception, SystemExit)
-    assert "no migration from store schema version 2" in result.output and "lab.sqlite.v1.bak" in result.output
-    assert version(old_store) == "1"
+    assert f"no migration from store schema version {NOW + 1}" in result.output
+    assert f"lab.sqlite.v{NOW}.bak" in result.output
+    assert version(old_store) == str(NOW)
 
 
 @pytest.mark.parametrize("command", [["info"], ["store", "check"], ["sweep", "SCENARIO", "--rollouts", "1"]])

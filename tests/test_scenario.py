@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import math
+import os
 import re
 import shutil
 from pathlib import Path
@@ -107,16 +108,22 @@ def test_missing_model_file_is_refused(project: Path) -> None:
         load_scenario(path)
 
 
-def test_model_path_leaving_the_project_is_refused(project: Path) -> None:
-    path = _variant(project, "../models/planar_body.xml", "../../../../etc/hosts.xml")
-    with pytest.raises(ScenarioError, match=r"leaves the scenario's project folder"):
-        load_scenario(path)
+def test_model_relative_to_the_scenario_file_may_lie_outside_the_project(project: Path, tmp_path_factory) -> None:
+    elsewhere = tmp_path_factory.mktemp("lab_robot") / "robot.xml"
+    shutil.copy(project / "models" / "planar_body.xml", elsewhere)
+    relative = os.path.relpath(elsewhere, project / "scenarios")
+    assert relative.startswith("../..")  # it leaves the project folder
+    scenario = load_scenario(_variant(project, "../models/planar_body.xml", relative))
+    assert scenario.model_path == elsewhere.resolve()
+    # the same model bytes at another place: the same simulation, so the same sweep key
+    assert scenario.simulation_hash == load_scenario(project / "scenarios" / "push_recovery.toml").simulation_hash
 
 
-def test_absolute_model_path_is_refused(project: Path) -> None:
-    path = _variant(project, "../models/planar_body.xml", str(project / "models" / "planar_body.xml"))
-    with pytest.raises(ScenarioError, match=r"absolute path"):
-        load_scenario(path)
+def test_absolute_model_path_loads(project: Path, tmp_path_factory) -> None:
+    elsewhere = tmp_path_factory.mktemp("abs_robot") / "robot.xml"
+    shutil.copy(project / "models" / "planar_body.xml", elsewhere)
+    scenario = load_scenario(_variant(project, "../models/planar_body.xml", str(elsewhere)))
+    assert scenario.model_path == elsewhere.resolve()
 
 
 def test_model_that_is_not_mjcf_is_refused(project: Path) -> None:
@@ -149,12 +156,19 @@ def test_overlay_extends_base_and_overrides_physics(project: Path) -> None:
     assert scenario.model_path == (project / "models" / "planar_body.xml").resolve()
 
 
-def test_overlay_extending_outside_the_project_is_refused(project: Path, tmp_path_factory) -> None:
-    elsewhere = tmp_path_factory.mktemp("elsewhere") / "base.toml"
-    shutil.copy(PUSH, elsewhere)
-    overlay = project / "scenarios" / "bad_overlay.toml"
-    overlay.write_text(f'extends = "{Path("..") / ".." / ".." / elsewhere.relative_to(elsewhere.anchor)}"\n')
-    with pytest.raises(ScenarioError, match=r"key 'extends'"):
+def test_overlay_may_extend_a_base_elsewhere_whose_model_is_relative_to_the_base(
+    project: Path, tmp_path_factory
+) -> None:
+    elsewhere = tmp_path_factory.mktemp("elsewhere")
+    (elsewhere / "scenarios").mkdir()
+    (elsewhere / "models").mkdir()
+    shutil.copy(PUSH, elsewhere / "scenarios" / "base.toml")
+    shutil.copy(project / "models" / "planar_body.xml", elsewhere / "models")
+    overlay = project / "scenarios" / "overlay.toml"
+    overlay.write_text(f'extends = "{elsewhere / "scenarios" / "base.toml"}"\n')
+    assert load_scenario(overlay).model_path == (elsewhere / "models" / "planar_body.xml").resolve()
+    overlay.write_text('extends = "missing.toml"\n')
+    with pytest.raises(ScenarioError, match=r"key 'extends'.*not found"):
         load_scenario(overlay)
 
 
@@ -172,13 +186,24 @@ def test_params_from_mapping_refuses_out_of_bounds_and_unknown_names() -> None:
         scenario.params_from_mapping(missing)
 
 
-def test_model_include_leaving_the_project_is_refused(project: Path) -> None:
+def test_model_includes_resolve_as_mujoco_does_and_enter_the_simulation_hash(project: Path, tmp_path_factory) -> None:
+    # MJCF <include file>: relative to the main model file's folder (MuJoCo XML reference, include/file),
+    # wherever that leads on disk.
+    shared = tmp_path_factory.mktemp("shared_parts")
+    (shared / "options.xml").write_text('<mujoco><option timestep="0.002"/></mujoco>\n')
     text = (project / "models" / "planar_body.xml").read_text()
-    bad = text.replace("<worldbody>", '<include file="../../../../etc/other.xml"/>\n  <worldbody>', 1)
-    (project / "models" / "leaky.xml").write_text(bad)
-    path = _variant(project, "../models/planar_body.xml", "../models/leaky.xml")
-    with pytest.raises(ScenarioError, match=r"file='../../../../etc/other.xml'.*leaves the scenario's project folder"):
+    relative = os.path.relpath(shared / "options.xml", project / "models")
+    included = text.replace("<default>", f'<include file="{relative}"/>\n  <default>', 1)
+    (project / "models" / "split.xml").write_text(included)
+    path = _variant(project, "../models/planar_body.xml", "../models/split.xml")
+    first = load_scenario(path)
+    assert (shared / "options.xml").resolve() in first.model_files
+    (shared / "options.xml").write_text('<mujoco><option timestep="0.002" impratio="2"/></mujoco>\n')
+    assert load_scenario(path).simulation_hash != first.simulation_hash  # an edited include is a new simulation
+    (shared / "options.xml").unlink()
+    with pytest.raises(ScenarioError, match=r"key 'model'.*MuJoCo cannot compile") as info:
         load_scenario(path)
+    assert "\n" not in str(info.value)
 
 
 def test_model_that_is_not_well_formed_xml_is_refused(project: Path) -> None:

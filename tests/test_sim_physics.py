@@ -112,7 +112,7 @@ def test_free_fall_follows_z0_minus_half_g_t_squared(push: Scenario) -> None:
     controls = build_controls(push, params, physics)
     x0 = initial_state(push, params)
     lay = model_layout(push)
-    x0[:, state_offsets(models[0])["qpos"] + lay.root_qpos[1]] += drop
+    x0[:, state_offsets(models[0])["qpos"] + lay.height_qpos] += drop
     nstep = push.task.nstep
     _, sensordata = mujoco.rollout.rollout(
         models, [mujoco.MjData(models[0])], x0, controls, control_spec=CONTROL_SPEC, nstep=nstep

@@ -17,7 +17,7 @@ import pytest
 
 from gapgauge import StoreError, Trajectory, load_scenario
 from gapgauge.records import RolloutBatch, TrialRecord
-from gapgauge.store import Store, schema
+from gapgauge.store import Store, connection, schema
 from gapgauge.store.codec import npz_to_arrays
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -104,16 +104,17 @@ def test_an_older_store_is_migrated_after_a_backup(tmp_path, scenario, monkeypat
     with Store(path) as store:
         run = store.start_run("sweep", scenario, seed=0, design="sobol", planned=12, nominal=False)
         store.write_rollouts(run, batch_of(scenario, np.arange(12)))
-    # pretend the code has moved on to version 2, which adds a column
-    monkeypatch.setattr(schema, "SCHEMA_VERSION", 2)
-    monkeypatch.setitem(schema.MIGRATIONS, 1, lambda c: c.execute("ALTER TABLE runs ADD COLUMN note TEXT"))
+    # pretend the code has moved on one version, which adds a column
+    now = schema.SCHEMA_VERSION
+    monkeypatch.setattr(schema, "SCHEMA_VERSION", now + 1)
+    monkeypatch.setitem(schema.MIGRATIONS, now, lambda c: c.execute("ALTER TABLE runs ADD COLUMN note TEXT"))
     with Store(path) as store:
-        assert store.backup_path == tmp_path / "s.sqlite.v1.bak"
-    backup = tmp_path / "s.sqlite.v1.bak"
-    assert count(backup, "SELECT value FROM meta WHERE key = 'schema_version'") == "1"
+        assert store.backup_path == tmp_path / f"s.sqlite.v{now}.bak"
+    backup = tmp_path / f"s.sqlite.v{now}.bak"
+    assert count(backup, "SELECT value FROM meta WHERE key = 'schema_version'") == str(now)
     assert count(backup, "SELECT COUNT(*) FROM rollouts") == 12
     assert integrity(backup) == "ok"
-    assert count(path, "SELECT value FROM meta WHERE key = 'schema_version'") == "2"
+    assert count(path, "SELECT value FROM meta WHERE key = 'schema_version'") == str(now + 1)
     assert count(path, "SELECT COUNT(*) FROM pragma_table_info('runs') WHERE name = 'note'") == 1
     assert count(path, "SELECT COUNT(*) FROM rollouts") == 12
 
@@ -284,3 +285,22 @@ def test_check_reports_a_store_whose_pages_are_overwritten(tmp_path, scenario):
     with Store(path) as store:
         problems = store.check()
     assert problems and all("restore" in p for p in problems)
+
+
+def test_a_read_decoded_chunk_by_chunk_equals_the_rows_as_stored(tmp_path, scenario, monkeypatch):
+    # issue 19: 10^6 rows are decoded 65,536 at a time; chunks of 7 here, so every boundary case occurs
+    monkeypatch.setattr(connection, "READ_CHUNK", 7)
+    path = tmp_path / "s.sqlite"
+    with Store(path) as store:
+        for seed, n in ((1, 30), (2, 14)):
+            run = store.start_run("sweep", scenario, seed=seed, design="sobol", planned=n, nominal=False)
+            store.write_rollouts(run, batch_of(scenario, np.arange(n), seed=seed))
+        back = store.rollouts(scenario.content_hash)
+    with sqlite3.connect(path) as conn:  # the rows as SQLite holds them, decoded here
+        rows = conn.execute("SELECT run_id, idx, params, status, objective FROM rollouts"
+                            " ORDER BY run_id, idx").fetchall()
+    assert len(back) == len(rows) == 44
+    assert back.run_ids.tolist() == [r[0] for r in rows] and back.indices.tolist() == [r[1] for r in rows]
+    np.testing.assert_array_equal(back.params, np.frombuffer(b"".join(r[2] for r in rows), "<f8").reshape(44, -1))
+    assert back.status.tolist() == [r[3] for r in rows]
+    np.testing.assert_array_equal(back.objective, [np.nan if r[4] is None else r[4] for r in rows])

@@ -8,7 +8,7 @@ from __future__ import annotations
 import importlib
 from typing import Any
 
-from .errors import GapgaugeError, LogError, ModelError, ScenarioError, StoreError
+from .errors import ControllerError, GapgaugeError, LogError, ModelError, ScenarioError, StoreError
 from .scenario import Scenario, load_scenario
 from .trajectory import Trajectory
 from .version import __version__
@@ -33,6 +33,7 @@ _LAZY = {
 
 __all__ = [
     "__version__",
+    "ControllerError",
     "GapgaugeError",
     "LogError",
     "ModelError",

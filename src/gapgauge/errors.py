@@ -17,6 +17,10 @@ class ScenarioError(GapgaugeError):
     """A scenario file (or its model file) is missing, malformed or inconsistent."""
 
 
+class ControllerError(ScenarioError):
+    """A scenario's own controller cannot be loaded, raised, or returned something unusable."""
+
+
 class LogError(GapgaugeError):
     """A hardware log or its sidecar cannot be taken in."""
 

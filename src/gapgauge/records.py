@@ -114,6 +114,8 @@ class IngestedFile:
     objective: float
     ignored_columns: list[str] = field(default_factory=list)
     warnings: list[str] = field(default_factory=list)
+    flags: list[str] = field(default_factory=list)  # one line per unusual channel (gapgauge.logs.ChannelFlag)
+    alignment: str = ""  # how the trial was placed in time (gapgauge.logs.Alignment.detail)
 
 
 @dataclass

@@ -13,3 +13,13 @@ CAUTION_BODY = (
 )
 
 CAUTION = "CAUTION: " + CAUTION_BODY
+
+#: the caution as the checks an operator ticks before each hardware trial (the run sheet of
+#: ``gapgauge propose --sheet``): the same harness or spotter, limits and emergency stop
+CHECKLIST: tuple[str, ...] = (
+    "harness or spotter in place",
+    "torque and speed limits set on the robot",
+    "emergency stop within reach and tested",
+    "parameters on the robot match this column",
+    "lab procedure and safety rules followed",
+)

@@ -12,7 +12,10 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-#: channel name -> (dimension, meaning). All values in SI: rad, rad/s, N m, N, m, m/s.
+#: channel name -> (dimension, meaning) of the bundled planar body (the default channel map). All values in
+#: SI: rad, rad/s, N m, N, m, m/s. A scenario's own channels follow its ``[model.channels]`` map
+#: (``Scenario.channels``): per-joint ``<joint>_angle/_rate/_torque``, per-contact-group
+#: ``<group>_force/_x/_y``, and :data:`BODY_CHANNELS`; :func:`channel_dimension` tells any of them.
 CHANNELS: dict[str, tuple[str, str]] = {
     "ankle_angle": ("angle", "ankle joint angle"),
     "knee_angle": ("angle", "knee joint angle"),
@@ -37,7 +40,70 @@ CHANNELS: dict[str, tuple[str, str]] = {
     "platform_x": ("length", "support platform position"),
 }
 
+#: actuated joints of the bundled planar body (and of a scenario without a ``[model.channels]`` map)
 JOINTS: tuple[str, ...] = ("ankle", "knee", "hip")
+
+#: channels of the body as a whole (not tied to a joint or a contact group), 3-D ones included:
+#: name -> (dimension, meaning). A scenario's own set is ``Scenario.channels``.
+BODY_CHANNELS: dict[str, tuple[str, str]] = {
+    "cop_x": ("length", "centre of pressure, horizontal (anterior-posterior)"),
+    "cop_y": ("length", "centre of pressure, medio-lateral (3-D models)"),
+    "com_x": ("length", "whole-body centre of mass, horizontal (anterior-posterior)"),
+    "com_y": ("length", "whole-body centre of mass, medio-lateral (3-D models)"),
+    "com_z": ("length", "whole-body centre of mass, height above the support surface"),
+    "com_vx": ("speed", "whole-body centre-of-mass velocity, horizontal (anterior-posterior)"),
+    "com_vy": ("speed", "whole-body centre-of-mass velocity, medio-lateral (3-D models)"),
+    "com_vz": ("speed", "whole-body centre-of-mass velocity, vertical"),
+    "trunk_pitch": ("angle", "trunk pitch from vertical, positive forward"),
+    "body_contact": ("force", "contact force on any segment other than the feet (simulation only)"),
+    "platform_x": ("length", "support platform position"),
+}
+#: suffix of a per-joint channel -> (dimension, what it measures)
+JOINT_SUFFIXES: dict[str, tuple[str, str]] = {
+    "angle": ("angle", "joint angle"),
+    "rate": ("angular_rate", "joint rate"),
+    "torque": ("torque", "joint torque"),
+}
+#: suffix of a per-contact-group channel -> (dimension, what it measures)
+CONTACT_SUFFIXES: dict[str, tuple[str, str]] = {
+    "force": ("force", "vertical ground reaction force under"),
+    "x": ("length", "horizontal (anterior-posterior) position of the contact"),
+    "y": ("length", "medio-lateral position of the contact"),
+}
+
+
+def joint_channels(joint: str) -> dict[str, tuple[str, str]]:
+    """The channels of one actuated joint: ``<joint>_angle`` (rad), ``_rate`` (rad/s), ``_torque`` (N m)."""
+    return {f"{joint}_{suffix}": (dim, f"{joint} {what}") for suffix, (dim, what) in JOINT_SUFFIXES.items()}
+
+
+def contact_channels(group: str, lateral: bool) -> dict[str, tuple[str, str]]:
+    """The channels of one contact group (points under the feet): ``<group>_force`` (N, vertical),
+    ``<group>_x`` (m, force-weighted position) and on a 3-D model ``<group>_y``."""
+    out = {}
+    for suffix, (dim, what) in CONTACT_SUFFIXES.items():
+        if suffix != "y" or lateral:
+            out[f"{group}_{suffix}"] = (dim, f"{what} {group}" if suffix == "force" else f"{group}: {what}")
+    return out
+
+
+def channel_dimension(name: str) -> str:
+    """Dimension (``angle``, ``angular_rate``, ``torque``, ``force``, ``length``, ``speed``) of a channel
+    name: a body channel, or a per-joint / per-contact-group channel told by its suffix.
+
+    Raises:
+        KeyError: the name has no known suffix.
+    """
+    if name in BODY_CHANNELS:
+        return BODY_CHANNELS[name][0]
+    if name in CHANNELS:
+        return CHANNELS[name][0]
+    stem, _, suffix = name.rpartition("_")
+    if stem and suffix in JOINT_SUFFIXES:
+        return JOINT_SUFFIXES[suffix][0]
+    if stem and suffix in CONTACT_SUFFIXES:
+        return CONTACT_SUFFIXES[suffix][0]
+    raise KeyError(name)
 
 
 class MissingChannelError(KeyError):

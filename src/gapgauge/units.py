@@ -2,12 +2,17 @@
 
 Each unit belongs to one dimension; a channel accepts only units of its own dimension
 (see :data:`gapgauge.trajectory.CHANNELS`). Factors are exact by definition (deg = pi/180 rad,
-mm = 1e-3 m, ms = 1e-3 s, kN = 1e3 N).
+mm = 1e-3 m, ms = 1e-3 s, kN = 1e3 N,
+kgf = 9.80665 N).
 """
 
 from __future__ import annotations
 
 import math
+
+#: standard acceleration of gravity, m/s^2, exact by definition (3rd CGPM, 1901; SI brochure, 9th ed.,
+#: appendix 1): one kilogram-force is 9.80665 N
+STANDARD_GRAVITY = 9.80665
 
 #: unit name -> (dimension, factor to SI)
 UNITS: dict[str, tuple[str, float]] = {
@@ -22,6 +27,7 @@ UNITS: dict[str, tuple[str, float]] = {
     "N mm": ("torque", 1e-3),
     "N": ("force", 1.0),
     "kN": ("force", 1e3),
+    "kgf": ("force", STANDARD_GRAVITY),
     "m": ("length", 1.0),
     "mm": ("length", 1e-3),
     "cm": ("length", 1e-2),

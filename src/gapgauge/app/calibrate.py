@@ -67,7 +67,7 @@ def calibrate(
     target = _overlay_target(scenario, overlay_path)  # refuse a bad path before the work, not after
     if simulator is None:
         simulator = functools.partial(simulate, scenario)
-    with open_store(store) as db:
+    with open_store(store, scenario=scenario) as db:
         params, features, names, trial_ids = _trial_arrays(scenario, db)
         result = calibrate_arrays(
             scenario, params, features, names, simulator, physics_names=physics_names, seed=seed,

@@ -18,14 +18,19 @@ def as_scenario(scenario: Scenario | str | Path) -> Scenario:
 
 
 @contextmanager
-def open_store(store: Store | str | Path, *, must_exist: bool = True) -> Iterator[Store]:
+def open_store(store: Store | str | Path, *, must_exist: bool = True,
+               scenario: Scenario | None = None) -> Iterator[Store]:
     """Yield a :class:`Store`: ``store`` itself (left open for its owner), or the file at that path,
-    opened here and closed on the way out.
+    opened here and closed on the way out. With ``scenario``, its version is recorded first, so the
+    runs and trials of every version that simulates the same (an edited hardware map, shift threshold,
+    objective weight or description) are found under its hash (:mod:`gapgauge.scenario.identity`).
 
     Raises:
         StoreError: ``must_exist`` and there is no file at the path.
     """
     if isinstance(store, Store):
+        if scenario is not None:
+            store.add_scenario(scenario)
         yield store
         return
     path = Path(store)
@@ -33,6 +38,8 @@ def open_store(store: Store | str | Path, *, must_exist: bool = True) -> Iterato
         raise StoreError(f"{path}: store not found; run a sweep into it first (or give the right store path)")
     opened = Store(path)
     try:
+        if scenario is not None:
+            opened.add_scenario(scenario)
         yield opened
     finally:
         opened.close()

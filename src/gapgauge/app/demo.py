@@ -19,6 +19,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
+from ..compare.budget import book_text
 from ..errors import ModelError, ScenarioError
 from ..progress import Progress
 from ..scenario import Scenario, load_scenario
@@ -223,7 +224,9 @@ def _whole_path(scenario: Scenario, store: Store, copies: dict[str, Path], out: 
     def budget_step() -> dict[str, Any]:
         plan = plan_budget(scenario, store, seed=seed, progress=progress,
                            **({"draws": 16, "max_trials": 30} if quick else {}))
-        return {"P80 with prior": plan.with_prior.p80, "P80 cold start": plan.cold_start.p80}
+        # a P80 beyond the simulated horizon is None in the result: say "> T trials", not "None"
+        return {"P80 with prior": f"{book_text(plan.with_prior.p80, plan.max_trials)} trials",
+                "P80 cold start": f"{book_text(plan.cold_start.p80, plan.max_trials)} trials"}
 
     def calibrate_step() -> dict[str, Any]:
         extra = {"generations": 4, "popsize": 2, "spread_draws": 4} if quick else {}

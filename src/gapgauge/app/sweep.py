@@ -36,8 +36,11 @@ def sweep(
 ) -> SweepSummary:
     """Run (or resume) a sweep of ``rollouts`` simulations over the scenario's parameter space.
 
-    A sweep is a run of kind ``sweep`` identified by (scenario version, seed, design, planned count,
-    nominal): the same call again finds the same run and simulates only the rows still missing. The
+    A sweep is a run of kind ``sweep`` identified by (simulation hash, seed, design, planned count,
+    nominal): the same call again finds the same run and simulates only the rows still missing, and so
+    does the call on a scenario whose hardware map, shift thresholds, objective weights or description
+    were edited (the objective is then recomputed from the stored features). A run of the same settings
+    measured with other feature definitions is stale: it is named in ``SweepSummary.stale`` with why. The
     design is a pure function of the seed and rollout ``i``'s physics draw depends only on ``(seed, i)``,
     so any chunking, order or worker gives the rows an uninterrupted run would have given.
 
@@ -64,6 +67,7 @@ def sweep(
     chunk = int(chunk_size or DEFAULT_CHUNK)
     with open_store(store, must_exist=False) as db:
         run_id = db.start_run("sweep", scenario, seed=seed, design=design, planned=rollouts, nominal=nominal)
+        stale = db.stale_runs(scenario, "sweep", seed=seed, design=design, planned=rollouts, nominal=nominal)
         todo = np.setdiff1d(np.arange(rollouts, dtype=np.int64), db.done_indices(run_id))
         start = time.perf_counter()
         ran = 0
@@ -96,13 +100,15 @@ def sweep(
                     client.close()
         wall = time.perf_counter() - start
         db.finish_run(run_id)
-        return summarise(db, scenario, run_id, ran, wall, todo.size == 0)
+        summary = summarise(db, scenario, run_id, ran, wall, todo.size == 0)
+        summary.stale = stale
+        return summary
 
 
 def summarise(db: Store, scenario: Scenario, run_id: int, ran: int, wall: float, nothing: bool) -> SweepSummary:
     """The :class:`SweepSummary` of run ``run_id`` as stored, with this invocation's ``ran`` rows in ``wall`` s."""
     run = db.run(run_id)
-    stats = db.run_summary(run_id)
+    stats = db.run_summary(run_id, scenario.content_hash)  # the objective as this scenario weighs it
     best = stats["best_params"]
     return SweepSummary(
         run_id=run_id, scenario=scenario.name, store=str(db.path), design=run.design, seed=run.seed,

@@ -10,9 +10,12 @@ from ..app.budget import plan_budget
 from ..app.calibrate import calibrate
 from ..app.prior import fit_prior
 from ..app.propose import propose
+from ..app.sheet import check_sheet_path, write_run_sheet
 from ..app.shift import assess_shift
 from ..compare.budget import book_text
 from ..compare.multifidelity import SPARSE_THRESHOLD
+from ..quantities import display_unit, feature_unit, format_interval, format_number, format_quantity
+from ..report.sections.shift_text import detail as shift_detail
 from ..safety import CAUTION
 from ..scenario import load_scenario
 from .common import console, json_option, num, pair, print_notes, progress_bars, store_option
@@ -28,32 +31,37 @@ from .common import console, json_option, num, pair, print_notes, progress_bars,
               help="Seed of the bootstraps and permutations.")
 @click.option("--level", default=None, type=click.FloatRange(0.0, 0.5, min_open=True, max_open=True),
               help="Significance level; overrides the scenario's [shift] level.")
+@click.option("--leave-out-flagged", is_flag=True,
+              help="Leave out, trial by trial, the features that read a channel flagged as unusual at ingest.")
 def shift_command(scenario: str, store_path: str, json_path: str | None, plots_dir: str | None, seed: int,
-                  level: float | None) -> None:
+                  level: float | None, leave_out_flagged: bool) -> None:
     """Does simulation carry over? Per-feature verdicts and joint tests on the matched hardware trials."""
 
     sc = load_scenario(scenario)
-    report = assess_shift(sc, store_path, seed=seed, level=level, json_path=json_path, plots_dir=plots_dir)
+    report = assess_shift(sc, store_path, seed=seed, level=level, json_path=json_path, plots_dir=plots_dir,
+                          leave_out_flagged=leave_out_flagged)
     s = report.settings
 
     colours = {"carries_over": "green", "offset_order_kept": "yellow", "does_not_carry_over": "red",
                "undecided": "white"}
     title = f"shift: {escape(sc.name)}, {len(report.trial_ids)} trial(s)"
     table = Table(title=title, title_justify="left")
-    for column in ("feature", "verdict", "n", "bias (sd)", f"{1 - s.level:.0%} bias interval",
-                   "max |resid|", "Wasserstein (sd)", "KS", "Kendall tau"):
+    for column in ("feature", "verdict", "n", "bias", "bias (sd)", f"{1 - s.level:.0%} bias interval",
+                   "max |resid| (sd)", "Wasserstein (sd)", "KS", "Kendall tau"):
         table.add_column(column, overflow="fold")
     for f in report.features:
         tau = f.rank.kendall if f.rank is not None else None
+        unit = feature_unit(f.name)
+        shown = display_unit(unit, [f.bias, *f.bias_test_interval])
         table.add_row(
             escape(f.name), f"[{colours[f.verdict]}]{f.verdict}[/]", str(f.n_trials),
-            num(f.bias_sd_units, "+.2f"),
-            pair(f.bias_test_interval), num(f.max_abs_residual, ".2f"), num(f.wasserstein_sd_units, ".2f"),
-            num(f.ks_statistic, ".2f"), num(tau, ".2f"),
+            format_quantity(f.bias, unit, display=shown, signed=True), num(f.bias_sd_units, "+.2f"),
+            format_interval(f.bias_test_interval, unit, display=shown), num(f.max_abs_residual, ".2f"),
+            num(f.wasserstein_sd_units, ".2f"), num(f.ks_statistic, ".2f"), num(tau, ".2f"),
         )
     console.print(table)
-    for f in report.features:
-        console.print(f"[{colours[f.verdict]}]{escape(f.name)}[/]: {escape(f.reason)}")
+    for f in report.features:  # the rule's evidence with the feature's unit, as the report states it
+        console.print(f"[{colours[f.verdict]}]{escape(f.name)}[/]: {escape(shift_detail(f, report.settings))}")
     j = report.joint
     console.print(
         f"joint ({len(j.features)} features): MMD^2 {num(j.mmd2)} (p = {num(j.mmd_p_value, '.3f')}, "
@@ -135,13 +143,25 @@ def prior_command(scenario: str, store_path: str, json_path: str | None, seed: i
               help='Write {"proposals": [...]} JSON here (gapgauge standin --params reads it).')
 @click.option("--seed", default=0, show_default=True, type=click.IntRange(0),
               help="Seed of the candidate sets (and of a refit, if the stored prior is out of date).")
+@click.option("--stop-epsilon", default=None, type=click.FloatRange(0.0, min_open=True),
+              help="Stop rule: the regret allowed, objective units (default: 5% of the simulated objective's "
+              "spread over the safe bounds).")
+@click.option("--stop-level", default=0.9, show_default=True,
+              type=click.FloatRange(0.0, 1.0, min_open=True, max_open=True),
+              help="Stop rule: stop when the probability that the current best is within epsilon of the best "
+              "reaches this.")
+@click.option("--sheet", "sheet_path", default=None, type=click.Path(dir_okay=False),
+              help="Also write the run sheet for the lab: FILE.html (print it; one A4 page per 5 trials) or FILE.csv.")
 def propose_command(scenario: str, store_path: str, count: int, max_fall_risk: float, out_path: str | None,
-                    seed: int) -> None:
+                    seed: int, stop_epsilon: float | None, stop_level: float, sheet_path: str | None) -> None:
     """Propose the next hardware trials: expected improvement x P(no fall), inside the safe bounds."""
 
+    if sheet_path:
+        check_sheet_path(sheet_path)  # a wrong suffix is refused before the work, not after
     sc = load_scenario(scenario)
     with progress_bars() as progress:
-        result = propose(sc, store_path, count=count, max_fall_risk=max_fall_risk, seed=seed, progress=progress)
+        result = propose(sc, store_path, count=count, max_fall_risk=max_fall_risk, seed=seed,
+                         stop_epsilon=stop_epsilon, stop_level=stop_level, progress=progress)
     table = Table(title=f"proposals: {escape(sc.name)} (P(fall) <= {max_fall_risk:g})", title_justify="left")
     table.add_column("parameter")
     table.add_column("unit")
@@ -149,19 +169,23 @@ def propose_command(scenario: str, store_path: str, count: int, max_fall_risk: f
         table.add_column(f"#{i + 1}", justify="right")
     for name in sc.parameter_names:
         table.add_row(escape(name), escape(result.units[name]),
-                      *[f"{p.params[name]:.4g}" for p in result.proposals])
-    table.add_row("predicted objective", "", *[f"{p.predicted_objective:.4g}" for p in result.proposals])
-    table.add_row("predicted sd", "", *[f"{p.predicted_sd:.3g}" for p in result.proposals])
-    table.add_row("P(fall)", "", *[f"{p.fall_risk:.3f}" for p in result.proposals])
+                      *[format_number(p.params[name]) for p in result.proposals])
+    table.add_row("predicted objective", "", *[format_number(p.predicted_objective) for p in result.proposals])
+    table.add_row("predicted sd", "", *[format_number(p.predicted_sd) for p in result.proposals])
+    table.add_row("P(fall)", "%", *[format_number(100 * p.fall_risk) for p in result.proposals])
     console.print(table)
     for i, p in enumerate(result.proposals):
         console.print(f"#{i + 1}: {escape(p.reason)}")
     console.print(f"batch: {escape(result.batch_method)}; incumbent {result.incumbent:.4g}; "
                   f"{result.n_hardware} hardware trial(s), {result.n_sim} simulated rollouts; seed {result.seed}")
     print_notes(result.notes)
+    if result.stop is not None:
+        console.print(f"[bold]{escape(result.stop.decision)}[/]")
     if out_path:
         result.write_json(out_path)
         console.print(f"JSON: {escape(out_path)}")
+    if sheet_path:
+        console.print(f"run sheet: {escape(str(write_run_sheet(sc, store_path, sheet_path, proposals=result)))}")
     console.print(f"[bold yellow]{CAUTION}[/]")
 
 
@@ -170,15 +194,22 @@ def propose_command(scenario: str, store_path: str, count: int, max_fall_risk: f
 @click.command("budget")
 @click.argument("scenario", type=click.Path(dir_okay=False))
 @store_option
-@click.option("--target", "target_fraction", default=0.95, show_default=True,
-              type=click.FloatRange(0.0, 1.0, min_open=True),
-              help="Target: this fraction of the way from a random safe parameter set (median) to the best.")
 @click.option("--target-value", default=None, type=float,
-              help="Target: this objective value instead (objective units, lower is better).")
+              help="Target: no fall, the success rule and this objective value or better (objective units, lower "
+              "is better). Default: the level most simulated tuning runs with the prior reach (see --reach-share).")
+@click.option("--within", "target_within", default=None, type=click.FloatRange(0.0),
+              help="Target: within this much (objective units) of the best the posterior expects for this robot.")
+@click.option("--target-fraction", default=None, type=click.FloatRange(0.0, 1.0, min_open=True),
+              help="Target, per drawn surface: this fraction of the way from a random safe parameter set to the "
+              "surface's own best (e.g. 0.95; an extreme, rarely reached).")
+@click.option("--reach-share", default=0.9, show_default=True,
+              type=click.FloatRange(0.0, 1.0, min_open=True, max_open=True),
+              help="Default target: the most ambitious level this share of the simulated runs reach within "
+              "--max-trials.")
 @click.option("--confidence", default=0.8, show_default=True, type=click.FloatRange(0.0, 1.0, min_open=True,
               max_open=True), help="Probability of reaching the target within the booked trials.")
 @click.option("--max-trials", default=20, show_default=True, type=click.IntRange(1, 500),
-              help="Trials per simulated tuning run.")
+              help="Trials per simulated tuning run (the horizon).")
 @click.option("--draws", default=128, show_default=True, type=click.IntRange(1, 100_000),
               help="Plausible hardware response surfaces drawn from the posterior.")
 @click.option("--max-fall-risk", default=0.05, show_default=True,
@@ -186,16 +217,17 @@ def propose_command(scenario: str, store_path: str, count: int, max_fall_risk: f
 @click.option("--seed", default=0, show_default=True, type=click.IntRange(0),
               help="Seed of the candidates, the draws and the observation noise.")
 @json_option
-def budget_command(scenario: str, store_path: str, target_fraction: float, target_value: float | None,
-                   confidence: float, max_trials: int, draws: int, max_fall_risk: float, seed: int,
-                   json_path: str | None) -> None:
+def budget_command(scenario: str, store_path: str, target_value: float | None, target_within: float | None,
+                   target_fraction: float | None, reach_share: float, confidence: float, max_trials: int, draws: int,
+                   max_fall_risk: float, seed: int, json_path: str | None) -> None:
     """How many hardware trials to book: Monte Carlo of the propose policy, with and without the prior."""
 
     sc = load_scenario(scenario)
     with progress_bars() as progress:
         plan = plan_budget(sc, store_path, target_fraction=target_fraction, target_value=target_value,
-                           confidence=confidence, max_trials=max_trials, draws=draws, seed=seed,
-                           max_fall_risk=max_fall_risk, progress=progress)
+                           target_within=target_within, reach_share=reach_share, confidence=confidence,
+                           max_trials=max_trials, draws=draws, seed=seed, max_fall_risk=max_fall_risk,
+                           progress=progress)
     level = f"P{round(100 * confidence)}"
     table = Table(title=f"budget: {escape(sc.name)}, trials to reach the target ({plan.draws} draws, "
                   f"up to {plan.max_trials} trials)", title_justify="left")
@@ -218,8 +250,13 @@ def budget_command(scenario: str, store_path: str, target_fraction: float, targe
     for key, label in (("with_prior", "with prior"), ("cold_start", "cold start")):
         curve.add_row(label, *[f"{getattr(plan.curve[n - 1], key):.2f}" for n in marks])
     console.print(curve)
-    console.print(f"target: {escape(plan.target.definition)}; fall-risk limit {plan.max_fall_risk:g}; "
-                  f"{plan.n_hardware} hardware trial(s) known; seed {plan.seed}; {plan.seconds:.1f} s")
+    console.print(f"[bold]target[/]: {escape(plan.target.sentence)}")
+    console.print(f"why: {escape(plan.target.why)}")
+    for label, arm in (("with the prior", plan.with_prior), ("cold start", plan.cold_start)):
+        if arm.beyond:
+            console.print(f"{label}: {escape(arm.beyond)} (options: --max-trials, --target-value, --draws)")
+    console.print(f"fall-risk limit {plan.max_fall_risk:g}; {plan.n_hardware} hardware trial(s) known; "
+                  f"seed {plan.seed}; {plan.seconds:.1f} s")
     print_notes(plan.notes)
     console.print(f"[bold]{escape(plan.sentence)}[/]")
     if json_path:
@@ -250,9 +287,12 @@ def calibrate_command(scenario: str, store_path: str, physics: str | None, overl
     for column in ("physics", "estimate", "95% interval", "was", "identifiable", "why"):
         table.add_column(column, overflow="fold")
     for p in result.parameters:
+        shown = display_unit(p.unit, [p.estimate, *p.interval, p.base_nominal])
         table.add_row(
-            escape(p.name), f"{p.estimate:.4g} {escape(p.unit)}", f"[{p.interval[0]:.4g}, {p.interval[1]:.4g}]",
-            f"{p.base_nominal:.4g}", "[green]yes[/]" if p.identifiable else "[yellow]no[/]", escape(p.reason),
+            escape(p.name), escape(format_quantity(p.estimate, p.unit, display=shown)),
+            escape(format_interval(p.interval, p.unit, display=shown)),
+            escape(format_quantity(p.base_nominal, p.unit, display=shown)),
+            "[green]yes[/]" if p.identifiable else "[yellow]no[/]", escape(p.reason),
         )
     console.print(table)
     shift = Table(title="feature shift (standardised residual rms; SHIFT verdict)", title_justify="left")

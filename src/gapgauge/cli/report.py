@@ -7,6 +7,7 @@ from rich.markup import escape
 
 from ..app.demo import DemoStep, run_demo
 from ..app.report import write_report
+from ..quantities import format_number
 from ..safety import CAUTION
 from .common import console, progress_bars, store_option
 
@@ -26,6 +27,12 @@ def report_command(scenario: str, store_path: str, out_path: str, plots_dir: str
     console.print(f"[bold]next step:[/] {escape(result.decision.next_step)}")
     if result.decision.command:
         console.print(f"  {escape(result.decision.command)}")
+    first = result.first_screen
+    if first.get("budget"):
+        console.print(f"[bold]budget:[/] {escape(first['budget']['value'])} ({escape(first['budget']['sub'])})")
+    for key, name in (("stop_rule", "stop rule"), ("calibration", "calibration")):
+        if first.get(key):
+            console.print(f"[bold]{name}:[/] {escape(first[key]['value'])}")
     for section in result.sections:
         if not section.filled:
             command = escape(section.fill_command or "")
@@ -37,10 +44,12 @@ def report_command(scenario: str, store_path: str, out_path: str, plots_dir: str
 def _figures_text(figures: dict) -> str:
     parts = []
     for key, value in figures.items():
-        if isinstance(value, float):
-            value = f"{value:.3g}"
+        if value is None:
+            value = "\u2013"
+        elif isinstance(value, float):
+            value = format_number(value)
         elif isinstance(value, (tuple, list)):
-            value = "[" + ", ".join(f"{v:.3g}" if isinstance(v, float) else str(v) for v in value) + "]"
+            value = "[" + ", ".join(format_number(v) if isinstance(v, float) else str(v) for v in value) + "]"
         parts.append(f"{key.replace('_', ' ')}: {value}")
     return "; ".join(parts)
 

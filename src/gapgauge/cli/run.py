@@ -11,7 +11,9 @@ from rich.table import Table
 from ..app.ingest import ingest
 from ..app.sweep import sweep
 from ..errors import GapgaugeError
+from ..quantities import format_number
 from ..records import DEFAULT_MATCHES
+from ..scenario import load_scenario
 from ..sim.standin import load_params_file, run_standin
 from ..sim.sweep import DEFAULT_CHUNK, MAX_ROLLOUTS
 from ..store import Store, check_store
@@ -47,6 +49,8 @@ def sweep_command(scenario: str, rollouts: int, design: str, seed: int, store_pa
     if s.nothing_to_do:
         console.print(f"nothing left to do: run {s.run_id} already holds all {s.planned} rollouts "
                       f"in {escape(s.store)}")
+    for line in s.stale:
+        console.print(f"[yellow]note[/]: {escape(line)}", soft_wrap=True)
     table = Table(title=f"sweep {escape(s.scenario)} (run {s.run_id}, {escape(s.store)})", title_justify="left")
     table.add_column("")
     table.add_column("value", justify="right")
@@ -56,7 +60,7 @@ def sweep_command(scenario: str, rollouts: int, design: str, seed: int, store_pa
     table.add_row("stood (ok)", f"{s.ok:,}")
     table.add_row("fell", f"{s.fell:,}")
     table.add_row("diverged", f"{s.diverged:,}")
-    table.add_row("best objective", "-" if s.best_objective is None else f"{s.best_objective:.4g}")
+    table.add_row("best objective", "-" if s.best_objective is None else format_number(s.best_objective))
     if s.ran_now:
         table.add_row("wall time", f"{s.wall_seconds:.1f} s")
         table.add_row("rate", f"{s.rollouts_per_second:,.1f} rollouts/s")
@@ -66,21 +70,25 @@ def sweep_command(scenario: str, rollouts: int, design: str, seed: int, store_pa
         for column in ("parameter", "value", "unit"):
             best.add_column(column, justify="right" if column == "value" else "left")
         for name, value in s.best_params.items():
-            best.add_row(escape(name), f"{value:.4g}", escape(s.units.get(name, "")))
+            best.add_row(escape(name), format_number(value), escape(s.units.get(name, "")))
         console.print(best)
 
 
 @click.command("info")
 @store_option
 @json_option
-def info_command(store_path: str, json_path: str | None) -> None:
+@click.option("--scenario", "scenario_path", default=None, type=click.Path(dir_okay=False),
+              help="Also say which runs this scenario can use, which are stale, and why.")
+def info_command(store_path: str, json_path: str | None, scenario_path: str | None) -> None:
     """What the store holds: scenarios, runs with progress, rollouts by status, trials, models."""
+    scenario = None if scenario_path is None else load_scenario(scenario_path)
     with Store(store_path, create=False) as store:
-        info = store.info(json_path=json_path)
+        info = store.info(json_path=json_path, scenario=scenario)
     r = info["rollouts"]
     console.print(f"store {escape(info['store'])} (schema {info['schema_version']}): {r['total']:,} rollouts "
                   f"({r['ok']:,} ok, {r['fell']:,} fell, {r['diverged']:,} diverged), "
-                  f"{info['trials']['total']} hardware trial(s) ({info['trials']['synthetic']} synthetic), "
+                  f"{info['trials']['total']} hardware trial(s) ({info['trials']['synthetic']} synthetic, "
+                  f"{info['trials']['flagged']} flagged, {info['trials']['unplaced']} not placed in time), "
                   f"{info['matches']} match(es), {len(info['models'])} fitted model(s)")
     if info["scenarios"]:
         table = Table(title="scenarios", title_justify="left")
@@ -98,6 +106,17 @@ def info_command(store_path: str, json_path: str | None) -> None:
                           "nominal" if run["nominal"] else "randomised", f"{run['done']:,} / {run['planned']:,}",
                           run["status"] if run["status"] == "done" else "[yellow]resumable[/]")
         console.print(table)
+    if info["trials"]["checks"]:
+        table = Table(title="trials with unusual channels or an onset not placed (kept; see shift)",
+                      title_justify="left")
+        for column in ("trial", "log", "flags", "onset"):
+            table.add_column(column, overflow="fold")
+        for t in info["trials"]["checks"]:
+            table.add_row(str(t["trial"]), escape(t["file"]), escape("; ".join(t["flags"]) or "-"),
+                          "placed" if t["placed"] else f"[yellow]not placed[/]: {escape(t['reason'])}")
+        console.print(table)
+    if "usable" in info:
+        _usable_table(info["usable"])
     if info["models"]:
         table = Table(title="fitted models and results", title_justify="left")
         for column in ("id", "kind", "scenario", "created"):
@@ -107,6 +126,20 @@ def info_command(store_path: str, json_path: str | None) -> None:
         console.print(table)
     if json_path:
         console.print(f"JSON: {escape(json_path)}")
+
+
+def _usable_table(usable: dict) -> None:
+    runs = usable["runs"]
+    title = (f"runs scenario {escape(usable['scenario'])} can use (simulation {usable['simulation_hash']}): "
+             f"{sum(r['status'] == 'usable' for r in runs)} of {len(runs)}")
+    table = Table(title=title, title_justify="left")
+    for column in ("run", "kind", "scenario version", "use", "why not"):
+        table.add_column(column, overflow="fold")
+    colour = {"usable": "green", "stale": "yellow", "other": "red"}
+    for r in runs:
+        table.add_row(str(r["id"]), r["kind"], r["scenario_hash"], f"[{colour[r['status']]}]{r['status']}[/]",
+                      escape(r["why"]))
+    console.print(table)
 
 
 @click.command("ingest")
@@ -132,8 +165,11 @@ def ingest_command(scenario: str, logs: tuple[str, ...], store_path: str, matche
                 notes.append("synthetic")
             if item.ignored_columns:
                 notes.append("ignored columns: " + ", ".join(item.ignored_columns))
-            notes.extend(item.warnings)
-            table.add_row(escape(item.path), label, str(item.trial_id), escape("; ".join(notes)))
+            notes.extend(f"[yellow]flag[/] {escape(f)}" for f in item.flags)
+            if item.alignment and not item.alignment.startswith("the log's clock is the scenario's"):
+                notes.append(escape(item.alignment))
+            notes.extend(escape(w) for w in item.warnings if not item.alignment or item.alignment not in w)
+            table.add_row(escape(item.path), label, str(item.trial_id), "; ".join(notes))
     for path, reason in summary.failed:
         table.add_row(escape(path), "[red]failed[/]", "", escape(reason))
     console.print(table)

@@ -66,16 +66,28 @@ class Matern52:
     def _scaled_sq_dist(self, X: np.ndarray, Z: np.ndarray) -> np.ndarray:
         Xs = X / self.length_scale
         Zs = Z / self.length_scale
-        # the expanded form is O(n m dim) in one matrix product; clip the rounding below zero
-        d2 = (Xs**2).sum(1)[:, None] + (Zs**2).sum(1)[None, :] - 2.0 * Xs @ Zs.T
-        return np.maximum(d2, 0.0)
+        # the expanded form is O(n m dim) in one matrix product; clip the rounding below zero. In place:
+        # the sparse level's pass over 10^6 rollouts makes 10^8-element matrices of these, chunk by chunk
+        d2 = Xs @ Zs.T
+        d2 *= -2.0
+        d2 += (Xs**2).sum(1)[:, None]
+        d2 += (Zs**2).sum(1)[None, :]
+        return np.maximum(d2, 0.0, out=d2)
 
     def __call__(self, X: np.ndarray, Z: np.ndarray | None = None) -> np.ndarray:
         """Covariance matrix ``(n x m)`` between ``X (n x dim)`` and ``Z (m x dim)`` (``Z = X`` if None)."""
         same = Z is None
         Z = X if Z is None else Z
-        r = np.sqrt(self._scaled_sq_dist(X, Z))
-        K = self.variance * (1.0 + SQRT5 * r + (5.0 / 3.0) * r**2) * np.exp(-SQRT5 * r)
+        # variance (1 + s + s^2 / 3) exp(-s) with s = sqrt5 r, the usual form, evaluated in place
+        s = np.sqrt(self._scaled_sq_dist(X, Z))
+        s *= SQRT5
+        K = np.exp(-s)
+        poly = s * s
+        poly *= 1.0 / 3.0
+        poly += s
+        poly += 1.0
+        K *= poly
+        K *= self.variance
         if same:
             np.fill_diagonal(K, self.variance)
         return K

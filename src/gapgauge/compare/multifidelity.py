@@ -71,6 +71,12 @@ SPARSE_THRESHOLD = 500
 # simulations fell (winsorised mean about -0.7 m); the exact fit on 600 rollouts gives length-scales of
 # 0.5-4 and -0.37 +- 0.23 m there (benchmarks/transfer.py found the corner: every stand-in fell on it).
 HYPERPARAMETER_SUBSAMPLE = 600
+# Past 10^5 rollouts, more rows do not make the sparse level more accurate: its error is set by the
+# hyperparameters (from 600 rollouts) and the inducing points (held-out RMSE of the push_recovery objective,
+# 300 inducing points, two fit seeds: 0.780 / 0.748 on 10^5 real rollouts, 0.776 / 0.802 on 2 x 10^5; see
+# benchmarks/prior_scale.py), while the O(n m^2) pass over all of 10^6 grows tenfold. Above this many points
+# the posterior uses a seeded random subsample of them; the fall model's threshold and link see every one.
+POSTERIOR_ROWS = 200_000
 RHO_PRIOR = (1.0, 0.5)  # mean, sd
 OFFSET_PRIOR_SD = 1.0  # simulation-sd units
 # simulation-sd units across the whole unit cube, shared among the dimensions: a weak prior that lets
@@ -98,6 +104,7 @@ class MultiFidelityGP:
         offset_prior_sd: sd of the normal prior of the constant offset (simulation-sd units).
         discrepancy_sd_prior: (median, log-sd) of the log-normal prior of the discrepancy sd.
         max_inducing: inducing points of the sparse simulation level.
+        max_posterior_rows: points the sparse simulation level's posterior uses at most (see ``POSTERIOR_ROWS``).
         sparse_threshold: use the sparse GP above this many simulation points.
         n_restarts: extra seeded optimiser starts for the discrepancy's hyperparameters.
         trend_prior_sd: sd of the discrepancy's linear trend across the unit cube (simulation-sd
@@ -117,6 +124,7 @@ class MultiFidelityGP:
         offset_prior_sd: float = OFFSET_PRIOR_SD,
         discrepancy_sd_prior: tuple[float, float] = DISCREPANCY_SD_PRIOR,
         max_inducing: int = 300,
+        max_posterior_rows: int | None = POSTERIOR_ROWS,
         sparse_threshold: int = SPARSE_THRESHOLD,
         n_restarts: int = 2,
         trend_prior_sd: float | None = TREND_PRIOR_SD,
@@ -127,6 +135,7 @@ class MultiFidelityGP:
         self.offset_prior_sd = offset_prior_sd
         self.discrepancy_sd_prior = discrepancy_sd_prior
         self.max_inducing = max_inducing
+        self.max_posterior_rows = max_posterior_rows
         self.sparse_threshold = sparse_threshold
         self.n_restarts = n_restarts
         self.random_state = random_state
@@ -149,6 +158,7 @@ class MultiFidelityGP:
                 n_inducing=self.max_inducing,
                 n_subsample=HYPERPARAMETER_SUBSAMPLE,
                 n_inducing_subsample=HYPERPARAMETER_SUBSAMPLE,
+                n_posterior=self.max_posterior_rows,
                 normalize_y=True,
                 random_state=rng,
             )
@@ -342,6 +352,7 @@ class MultiFidelityGP:
             "offset_prior_sd": self.offset_prior_sd,
             "discrepancy_sd_prior": list(self.discrepancy_sd_prior),
             "max_inducing": self.max_inducing,
+            "max_posterior_rows": self.max_posterior_rows,
             "sparse_threshold": self.sparse_threshold,
             "n_restarts": self.n_restarts,
             "trend_prior_sd": self.trend_prior_sd,
@@ -365,6 +376,7 @@ class MultiFidelityGP:
             offset_prior_sd=params["offset_prior_sd"],
             discrepancy_sd_prior=tuple(params["discrepancy_sd_prior"]),
             max_inducing=params["max_inducing"],
+            max_posterior_rows=params.get("max_posterior_rows"),
             sparse_threshold=params["sparse_threshold"],
             n_restarts=params["n_restarts"],
             trend_prior_sd=params["trend_prior_sd"],

@@ -22,7 +22,14 @@ Reuse. The simulation level depends on the sweep alone; :attr:`PriorFit.simulati
 the simulated rows the fit used (and ``max_inducing``). Given a previous fit with the same key
 (``simulation_level``), :func:`fit_prior` keeps its simulation levels and refits the hardware levels
 only: the result is the one a full fit with that fit's seed gives (the objective and the fall model
-draw from separate seed streams), in a fraction of the time.
+draw from separate seed streams), in a fraction of the time. :func:`refit_hardware` does the same from
+the trials alone, for a caller that knows the sweep is unchanged without reading it
+(:attr:`PriorFit.sweep_state`, set by :mod:`gapgauge.app.prior` from the store's run counts): a new
+trial then costs the hardware levels (a few trials) and never a read or a hash of 10^5-10^6 rollouts.
+The simulation levels' cost does not grow with the trials, nor the hardware levels' with the sweep.
+
+Data (``PriorData``, ``HardwareData``, ``prior_data``, ``hardware_data``) live in
+:mod:`gapgauge.compare.prior_data` and are re-exported here.
 
 This module is pure: the store is read and written by :mod:`gapgauge.app.prior`. A :class:`PriorFit`
 is a :class:`~gapgauge.results.Result` whose models travel as unstored fields; :meth:`PriorFit.to_state`
@@ -31,7 +38,6 @@ is a :class:`~gapgauge.results.Result` whose models travel as unstored fields; :
 
 from __future__ import annotations
 
-import hashlib
 import time
 from dataclasses import dataclass, field
 from typing import Any, ClassVar
@@ -40,144 +46,20 @@ import numpy as np
 
 from ..errors import ModelError
 from ..progress import Progress, or_silent
-from ..records import RolloutBatch, TrialRecord
 from ..results import Result
 from ..scenario import Scenario
 from .fall import FallModel
 from .gp import ExactGP
 from .kernels import Matern52, default_length_scale
 from .multifidelity import MultiFidelityGP
+from .prior_data import MARGIN, HardwareData, PriorData, hardware_data, prior_data
 
 MODEL_KIND = "prior"
-MARGIN = "margin_of_stability"
 LOG2PI = np.log(2.0 * np.pi)
 STAGE = "prior"
 DEFAULT_MAX_INDUCING = 300
 UNSTORED = {"stored": False}
-
-
-# ---- data ----------------------------------------------------------------------------------
-
-
-@dataclass
-class PriorData:
-    """The arrays a prior is fitted on, inputs in the unit cube of the scenario's full bounds.
-
-    Attributes:
-        X_sim, y_sim: ``(n x dim)`` and ``(n,)`` objective units, the rollouts that stood.
-        X_hw, y_hw: ``(k x dim)`` and ``(k,)``, the hardware trials that stood with a finite objective.
-        X_sim_margin, margin_sim, fell_sim_margin: ``(n_m x dim)``, ``(n_m,)`` m and ``(n_m,)`` bool, the
-            rollouts with a measured margin of stability (fallen ones included).
-        X_hw_margin, margin_hw: ``(k_m x dim)``, ``(k_m,)`` m, the trials with a margin.
-        n_diverged: rollouts left out for having diverged.
-        notes: what was left out and why.
-    """
-
-    X_sim: np.ndarray
-    y_sim: np.ndarray
-    X_hw: np.ndarray
-    y_hw: np.ndarray
-    X_sim_margin: np.ndarray | None = None
-    margin_sim: np.ndarray | None = None
-    fell_sim_margin: np.ndarray | None = None
-    X_hw_margin: np.ndarray | None = None
-    margin_hw: np.ndarray | None = None
-    n_diverged: int = 0
-    notes: list[str] = field(default_factory=list)
-
-    def __post_init__(self) -> None:
-        dim = np.atleast_2d(self.X_sim).shape[1]
-
-        def rows(X: np.ndarray | None) -> np.ndarray:
-            return np.asarray([] if X is None else X, dtype=float).reshape(-1, dim)
-
-        def values(y: np.ndarray | None, dtype: type = float) -> np.ndarray:
-            return np.asarray([] if y is None else y, dtype=dtype).ravel()
-
-        self.X_sim, self.y_sim = rows(self.X_sim), values(self.y_sim)
-        self.X_hw, self.y_hw = rows(self.X_hw), values(self.y_hw)
-        self.X_sim_margin, self.margin_sim = rows(self.X_sim_margin), values(self.margin_sim)
-        fell = np.zeros(self.margin_sim.size) if self.fell_sim_margin is None else self.fell_sim_margin
-        self.fell_sim_margin = values(fell, bool)
-        self.X_hw_margin, self.margin_hw = rows(self.X_hw_margin), values(self.margin_hw)
-        for name, X, y in (("sim", self.X_sim, self.y_sim), ("hw", self.X_hw, self.y_hw),
-                           ("sim_margin", self.X_sim_margin, self.margin_sim),
-                           ("hw_margin", self.X_hw_margin, self.margin_hw)):
-            if X.shape[0] != y.size:
-                raise ValueError(f"X_{name} has {X.shape[0]} rows but its targets have {y.size}")
-
-    def simulation_key(self, max_inducing: int) -> str:
-        """sha256 of the simulated rows (objective and margin) and ``max_inducing``: what the simulation
-        levels depend on."""
-        return _digest([self.X_sim, self.y_sim, self.X_sim_margin, self.margin_sim,
-                        self.fell_sim_margin.astype(float), np.array([float(max_inducing)])])
-
-    def hardware_key(self) -> str:
-        """sha256 of the hardware rows (objective and margin): what the hardware levels depend on."""
-        return _digest([self.X_hw, self.y_hw, self.X_hw_margin, self.margin_hw])
-
-
-def _digest(arrays: list[np.ndarray]) -> str:
-    h = hashlib.sha256()
-    for a in arrays:
-        a = np.ascontiguousarray(a, dtype=float)
-        h.update(repr(a.shape).encode())
-        h.update(a.tobytes())
-    return h.hexdigest()
-
-
-def prior_data(scenario: Scenario, sweep: RolloutBatch | None, trials: list[TrialRecord]) -> PriorData:
-    """The :class:`PriorData` of a scenario from its sweep rollouts and its hardware trials.
-
-    Raises:
-        ModelError: no sweep rollouts, or none that stood.
-    """
-    if sweep is None or len(sweep) == 0:
-        raise ModelError(f"the store has no sweep for scenario {scenario.name!r}; run a sweep of {scenario.path} "
-                         "into this store first (gapgauge sweep)")
-    notes: list[str] = []
-    status = np.asarray(sweep.status)
-    diverged = status == "diverged"
-    n_diverged = int(diverged.sum())
-    if n_diverged:
-        notes.append(f"{n_diverged} diverged rollout(s) left out (no measurement)")
-    objective = np.asarray(sweep.objective, dtype=float)
-    ok = (status == "ok") & np.isfinite(objective)
-    n_fell = int((status == "fell").sum())
-    if n_fell:
-        notes.append(f"{n_fell} fallen rollout(s) left out of the objective model (kept in the fall model)")
-    if not ok.any():
-        raise ModelError(f"the sweep of {scenario.name!r} has no rollout that stood; widen the bounds or run a "
-                         "larger sweep (gapgauge sweep)")
-    margin = np.asarray(sweep.features.get(MARGIN, np.full(len(sweep), np.nan)), dtype=float)
-    has_margin = ~diverged & np.isfinite(margin)
-    params = np.asarray(sweep.params, dtype=float)
-    X_hw, y_hw, X_hm, m_hw = [], [], [], []
-    n_fell_hw = 0
-    for trial in trials:
-        x = scenario.params_from_mapping(trial.params, source=f"trial {trial.source_path}")
-        fell = trial.outcome == "fell" or bool(trial.features.get("fell", 0.0) or 0.0)
-        if fell:
-            n_fell_hw += 1
-        elif trial.objective is not None and np.isfinite(trial.objective):
-            X_hw.append(x)
-            y_hw.append(float(trial.objective))
-        value = trial.features.get(MARGIN)
-        if value is not None and np.isfinite(value):
-            X_hm.append(x)
-            m_hw.append(float(value))
-    if n_fell_hw:
-        notes.append(f"{n_fell_hw} hardware trial(s) that fell left out of the objective model")
-    dim = scenario.dim
-    return PriorData(
-        X_sim=scenario.to_unit(params[ok]), y_sim=objective[ok],
-        X_hw=scenario.to_unit(np.array(X_hw).reshape(-1, dim)), y_hw=np.array(y_hw),
-        X_sim_margin=scenario.to_unit(params[has_margin]), margin_sim=margin[has_margin],
-        fell_sim_margin=(status == "fell")[has_margin],
-        X_hw_margin=scenario.to_unit(np.array(X_hm).reshape(-1, dim)), margin_hw=np.array(m_hw),
-        n_diverged=n_diverged, notes=notes,
-    )
-
+NO_MARGIN_NOTE = f"no {MARGIN} in the sweep: proposals carry no fall risk"
 
 # ---- the result ----------------------------------------------------------------------------
 
@@ -204,6 +86,9 @@ class PriorFit(Result):
         simulation_reused: the simulation levels were those of a previous fit on the same sweep.
         seed, max_inducing: the fit's settings.
         notes: what was left out and why.
+        simulation_notes: the part of ``notes`` about the sweep (kept when only the hardware is refitted).
+        sweep_state: the caller's cheap key of the sweep the simulation levels were fitted on (the store's
+            runs and row counts, see :func:`gapgauge.app.prior.sweep_state`); "" when unknown.
         scenario, objective_model, fall_model: the live scenario and models (not stored in the JSON;
             :meth:`to_state` / :meth:`from_state` carry the models); ``fall_model`` is None when no
             margin of stability was available.
@@ -235,6 +120,8 @@ class PriorFit(Result):
     simulation_reused: bool = False
     fit_seconds: float = 0.0
     notes: list[str] = field(default_factory=list)
+    simulation_notes: list[str] = field(default_factory=list)
+    sweep_state: str = ""
     scenario: Scenario | None = field(default=None, metadata=UNSTORED)
     objective_model: MultiFidelityGP | None = field(default=None, metadata=UNSTORED)
     fall_model: FallModel | None = field(default=None, metadata=UNSTORED)
@@ -353,6 +240,7 @@ def fit_prior(
     seed: int = 0,
     max_inducing: int = DEFAULT_MAX_INDUCING,
     simulation_level: PriorFit | None = None,
+    sweep_state: str = "",
     progress: Progress | None = None,
 ) -> PriorFit:
     """Fit the multi-fidelity prior and the fall model of ``scenario`` to ``data``.
@@ -365,6 +253,7 @@ def fit_prior(
             ``multifidelity.SPARSE_THRESHOLD`` = 500 points).
         simulation_level: a previous fit (with its models): when its ``simulation_key`` equals this
             data's, its simulation levels (and its seed) are kept and only the hardware levels refitted.
+        sweep_state: the caller's key of the sweep ``data`` was read from, stored with the result.
         progress: called as ``progress(stage, step, 3)`` after each of the three steps.
 
     Raises:
@@ -375,36 +264,94 @@ def fit_prior(
     if max_inducing < 1:
         raise ModelError(f"max_inducing must be at least 1, got {max_inducing}")
     started = time.perf_counter()
-    tick = or_silent(progress)
-    notes = list(data.notes)
     key = data.simulation_key(max_inducing)
-    reuse = (simulation_level is not None and simulation_level.simulation_key == key
-             and simulation_level.objective_model is not None
-             and (simulation_level.fall_model is not None) == bool(data.margin_sim.size))
-    if reuse:
-        seed = simulation_level.seed
-        objective = simulation_level.objective_model.copy_with_high(data.X_hw, data.y_hw, optimize=True)
-        notes.append(f"simulation level reused from the previous fit (same sweep rows, seed {seed}); "
-                     "hardware level refitted")
-    else:
-        # separate streams, so that a refit of the hardware level alone reproduces a full fit
-        objective_seed, fall_seed = np.random.SeedSequence(int(seed)).spawn(2)
-        objective = MultiFidelityGP(max_inducing=max_inducing, random_state=np.random.default_rng(objective_seed))
-        objective.fit(data.X_sim, data.y_sim, data.X_hw, data.y_hw)
+    if (simulation_level is not None and simulation_level.simulation_key == key
+            and simulation_level.objective_model is not None
+            and (simulation_level.fall_model is not None) == bool(data.margin_sim.size)):
+        notes = list(data.notes) + ([] if data.margin_sim.size else [NO_MARGIN_NOTE])
+        return refit_hardware(scenario, simulation_level, data.hardware(), sweep_state=sweep_state,
+                              simulation_notes=notes, progress=progress, started=started)
+    tick = or_silent(progress)
+    # separate streams, so that a refit of the hardware level alone reproduces a full fit
+    objective_seed, fall_seed = np.random.SeedSequence(int(seed)).spawn(2)
+    objective = MultiFidelityGP(max_inducing=max_inducing, random_state=np.random.default_rng(objective_seed))
+    objective.fit(data.X_sim, data.y_sim, data.X_hw, data.y_hw)
     tick(f"{STAGE}: objective model ({data.y_sim.size} simulated rollouts, {data.y_hw.size} hardware trials)", 1, 3)
     fall = None
+    simulation_notes = list(data.notes)
     if data.margin_sim.size:
-        if reuse:
-            fall = simulation_level.fall_model.copy_with_high(data.X_hw_margin, data.margin_hw)
-        else:
-            fall = FallModel(max_inducing=max_inducing, random_state=np.random.default_rng(fall_seed)).fit(
-                data.X_sim_margin, data.margin_sim, data.X_hw_margin, data.margin_hw, fell_low=data.fell_sim_margin)
+        fall = FallModel(max_inducing=max_inducing, random_state=np.random.default_rng(fall_seed)).fit(
+            data.X_sim_margin, data.margin_sim, data.X_hw_margin, data.margin_hw, fell_low=data.fell_sim_margin)
     else:
-        notes.append(f"no {MARGIN} in the sweep: proposals carry no fall risk")
+        simulation_notes.append(NO_MARGIN_NOTE)
     tick(f"{STAGE}: fall model ({data.margin_sim.size} simulated margins, {data.margin_hw.size} hardware)", 2, 3)
-    loo = leave_one_out(objective, data.X_hw, data.y_hw, int(seed))
-    tick(f"{STAGE}: leave-one-out over {data.y_hw.size} hardware trials", 3, 3)
-    if data.y_hw.size == 0:
+    simulation = {
+        "n_sim": int(data.y_sim.size), "n_sim_fall_model": int(data.margin_sim.size),
+        "n_diverged": int(data.n_diverged), "simulation_level": type(objective.low_).__name__,
+        "simulation_key": key, "seed": int(seed), "max_inducing": int(max_inducing),
+        "simulation_notes": simulation_notes, "sweep_state": sweep_state,
+    }
+    return _result(scenario, objective, fall, data.hardware(), simulation, False, tick, started)
+
+
+def refit_hardware(
+    scenario: Scenario,
+    previous: PriorFit,
+    hardware: HardwareData,
+    *,
+    sweep_state: str = "",
+    simulation_notes: list[str] | None = None,
+    progress: Progress | None = None,
+    started: float | None = None,
+) -> PriorFit:
+    """The prior of ``previous`` (with its models) with its simulation levels kept and its hardware levels
+    refitted to ``hardware`` (:func:`hardware_data`): the fit a full :func:`fit_prior` with ``previous.seed``
+    gives on the same sweep, without the sweep's rows.
+
+    Args:
+        scenario: the scenario (parameter names, for the result).
+        previous: a fit on the sweep as it stands (the caller knows it is unchanged).
+        hardware: the trials' arrays.
+        sweep_state: stored with the result; "" keeps ``previous.sweep_state``.
+        simulation_notes: the sweep's notes when the caller has the data; None keeps ``previous``'s.
+        progress: called as ``progress(stage, step, 3)`` after each of the three steps.
+        started: ``time.perf_counter()`` at the caller's start, for ``fit_seconds``.
+
+    Raises:
+        ModelError: ``previous`` was read without its models.
+    """
+    started = time.perf_counter() if started is None else started
+    _, model = previous._models()
+    tick = or_silent(progress)
+    objective = model.copy_with_high(hardware.X_hw, hardware.y_hw, optimize=True)
+    tick(f"{STAGE}: objective model (simulation level reused, {hardware.y_hw.size} hardware trials)", 1, 3)
+    fall = None
+    if previous.fall_model is not None:
+        fall = previous.fall_model.copy_with_high(hardware.X_hw_margin, hardware.margin_hw)
+    tick(f"{STAGE}: fall model (simulation level reused, {hardware.margin_hw.size} hardware)", 2, 3)
+    simulation = {name: getattr(previous, name) for name in (
+        "n_sim", "n_sim_fall_model", "n_diverged", "simulation_level", "simulation_key", "seed", "max_inducing",
+        "simulation_notes", "sweep_state")}
+    simulation["simulation_notes"] = list(previous.simulation_notes if simulation_notes is None else simulation_notes)
+    if sweep_state:
+        simulation["sweep_state"] = sweep_state
+    return _result(scenario, objective, fall, hardware, simulation, True, tick, started)
+
+
+def _result(
+    scenario: Scenario, objective: MultiFidelityGP, fall: FallModel | None, hardware: HardwareData,
+    simulation: dict[str, Any], reused: bool, tick: Progress, started: float,
+) -> PriorFit:
+    """The leave-one-out step and the :class:`PriorFit` of fitted models; ``simulation`` holds the fields
+    that describe the simulation levels."""
+    seed = simulation["seed"]
+    loo = leave_one_out(objective, hardware.X_hw, hardware.y_hw, int(seed))
+    tick(f"{STAGE}: leave-one-out over {hardware.y_hw.size} hardware trials", 3, 3)
+    notes = [*simulation["simulation_notes"], *hardware.notes]
+    if reused:
+        notes.append(f"simulation level reused from the previous fit (same sweep rows, seed {seed}); "
+                     "hardware level refitted")
+    if hardware.y_hw.size == 0:
         notes.append("no hardware trials yet: the prior is the simulation level plus the discrepancy prior")
     return PriorFit(
         scenario_name=scenario.name, scenario_hash=scenario.content_hash,
@@ -412,11 +359,12 @@ def fit_prior(
         rho=objective.rho_, rho_interval=tuple(float(v) for v in objective.rho_interval_),
         discrepancy_scale=objective.discrepancy_scale_, offset=objective.offset_,
         hardware_noise_sd=objective.hardware_noise_sd_, loo=loo,
-        n_sim=int(data.y_sim.size), n_sim_fall_model=int(data.margin_sim.size), n_hardware=int(data.y_hw.size),
-        n_hardware_fall_model=int(data.margin_hw.size), n_diverged=int(data.n_diverged),
-        simulation_level=type(objective.low_).__name__, simulation_key=key, hardware_key=data.hardware_key(),
-        seed=int(seed), max_inducing=int(max_inducing), simulation_reused=bool(reuse),
+        n_hardware=int(hardware.y_hw.size), n_hardware_fall_model=int(hardware.margin_hw.size),
+        hardware_key=hardware.hardware_key(), simulation_reused=reused,
         fit_seconds=time.perf_counter() - started, notes=notes,
-        scenario=scenario, objective_model=objective, fall_model=fall,
+        scenario=scenario, objective_model=objective, fall_model=fall, **simulation,
     )
 
+
+__all__ = ["DEFAULT_MAX_INDUCING", "HardwareData", "PriorData", "PriorFit", "fit_prior", "hardware_data",
+           "hardware_only_gp", "leave_one_out", "prior_data", "refit_hardware"]

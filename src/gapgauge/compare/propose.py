@@ -15,7 +15,8 @@ proposal come from the fitted prior, not from the beliefs.
 
 Pure: :func:`propose` takes a fitted :class:`~gapgauge.compare.prior.PriorFit` (with its models) and
 the scenario; :func:`gapgauge.app.propose.propose` reads the prior from the store and saves the result.
-Every :class:`Proposals` carries the caution of :mod:`gapgauge.safety` in its JSON.
+Every :class:`Proposals` carries the caution of :mod:`gapgauge.safety` in its JSON, and, when made by
+the propose job, the stop rule after the trials so far (:mod:`gapgauge.compare.stop`, field ``stop``).
 """
 
 from __future__ import annotations
@@ -31,6 +32,7 @@ from ..safety import CAUTION
 from ..scenario import Scenario
 from .acquisition import AcquisitionResult, maximise_acquisition
 from .prior import PriorFit
+from .stop import StopRule
 
 BATCH_METHOD = "kriging believer (Ginsbourger, Le Riche and Carraro 2010)"
 DEFAULT_CANDIDATES = 1024
@@ -71,6 +73,9 @@ class Proposals(Result):
         n_hardware, n_sim: hardware trials and simulated rollouts the prior was fitted on.
         units: parameter name -> unit. notes: what the reader should know.
         caution: the safety caution (:data:`gapgauge.safety.CAUTION`).
+        stop: the stop rule after the trials so far (probability the current best is within epsilon of
+            the best, epsilon, level, the decision in words; :func:`gapgauge.compare.stop.stop_rule`), or
+            None when it was not evaluated.
     """
 
     kind: ClassVar[str] = "proposals"
@@ -88,6 +93,7 @@ class Proposals(Result):
     units: dict[str, str] = field(default_factory=dict)
     notes: list[str] = field(default_factory=list)
     caution: str = CAUTION
+    stop: StopRule | None = None
 
 
 def check_arguments(count: int, max_fall_risk: float, seed: int) -> None:

@@ -16,7 +16,8 @@ variance (the same formulas as the "SGPR" of common GP libraries):
 Everything touching all ``n`` points is ``O(n m^2)`` and done in chunks, so 10^5 rollouts with a few
 hundred inducing points fit in seconds. What it adds beyond the paper's algorithm, for scale:
 
-- inducing inputs chosen by k-means++ seeding (Arthur and Vassilvitskii 2007) rather than optimised;
+- inducing inputs chosen by k-means++ seeding (Arthur and Vassilvitskii 2007) rather than optimised
+  (:mod:`gapgauge.compare.inducing`);
 - hyperparameters by maximising the bound (with its analytic gradient, derived below) on a random
   subsample of ``n_subsample`` points with ``m`` inducing points chosen from it, then the final
   posterior on all points with inducing points re-chosen in the length-scale-scaled space.
@@ -26,13 +27,10 @@ Gradient of the bound. With ``v = (Q + noise I)^-1 y``, ``P = K_uu^-1 K_uf`` and
 ``dF/dK_ff,ii = -1 / (2 noise)`` and ``dF/dnoise = (v^T v - tr (Q + noise I)^-1) / 2
 + tr(K_ff - Q) / (2 noise^2)``; all are formed in ``O(n m^2)`` without an ``n x n`` matrix.
 
-Surface as in :mod:`gapgauge.compare.gp`: ``fit(X, y)`` returns self, ``predict(X, return_std=False,
-return_cov=False)``, ``sample_y(X, n_samples, random_state)``, ``log_marginal_likelihood(theta=None,
-eval_gradient=False)`` (here the bound, on the hyperparameter subsample), ``to_state()`` /
-``from_state()`` (the subsample is stored too, so the bound can be evaluated after a reload).
-The inducing covariance carries a fixed relative regularisation ``INDUCING_JITTER`` (part of the
-model: the bound and its gradient include it); every Cholesky factor then goes through the package's
-one jitter policy, :func:`gapgauge.compare.linalg.cholesky_jittered`.
+Surface as in :mod:`gapgauge.compare.gp` (``log_marginal_likelihood`` is the bound on the hyperparameter
+subsample, stored by ``to_state`` so that it can be evaluated after a reload). The inducing covariance
+carries a fixed relative regularisation ``INDUCING_JITTER`` (part of the model: the bound and its gradient
+include it); every Cholesky factor goes through :func:`gapgauge.compare.linalg.cholesky_jittered`.
 """
 
 from __future__ import annotations
@@ -46,6 +44,7 @@ from threadpoolctl import threadpool_limits
 
 from ..errors import ModelError
 from .gp import LOG2PI, ExactGP, draw_gaussian, log_normal_prior
+from .inducing import choose_inducing, kmeans_plusplus
 from .kernels import Matern52, default_length_scale
 from .linalg import CHOLESKY_LOWER, FIT_BLAS_THREADS, cholesky_jittered, solve_lower
 
@@ -53,26 +52,10 @@ from .linalg import CHOLESKY_LOWER, FIT_BLAS_THREADS, cholesky_jittered, solve_l
 # length-scales; this relative jitter keeps its Cholesky factor finite (a common choice, 1e-6)
 INDUCING_JITTER = 1e-6
 CHUNK = 8192
-
-
-def kmeans_plusplus(X: np.ndarray, m: int, rng: np.random.Generator) -> np.ndarray:
-    """``m`` rows of ``X (n x dim)`` chosen by k-means++ seeding (Arthur and Vassilvitskii 2007).
-
-    Each next centre is drawn with probability proportional to its squared distance to the
-    nearest centre chosen so far; returns the chosen row indices ``(m,)``.
-    """
-    n = X.shape[0]
-    if m >= n:
-        return np.arange(n)
-    chosen = np.empty(m, dtype=int)
-    chosen[0] = rng.integers(n)
-    d2 = ((X - X[chosen[0]]) ** 2).sum(1)
-    for i in range(1, m):
-        total = d2.sum()
-        j = int(rng.choice(n, p=d2 / total)) if total > 0 else int(rng.integers(n))
-        chosen[i] = j
-        d2 = np.minimum(d2, ((X - X[j]) ** 2).sum(1))
-    return chosen
+# a prediction at up to this many points keeps k_u(X) and M k_u(X) for the next call with the same X: the
+# multi-fidelity hardware level asks the simulation level about the same candidates three times per step
+MEMO_ROWS = 4096
+MEMO_ENTRIES = 4
 
 
 class SparseGP:
@@ -83,6 +66,7 @@ class SparseGP:
         noise: initial noise variance (standardised output units squared).
         n_inducing: number of inducing inputs ``m`` (at most the number of points).
         n_subsample: points used to fit the hyperparameters (all when fewer).
+        n_posterior: points the posterior is computed on, a seeded random subsample when more (None: all).
         n_inducing_subsample: inducing inputs used while fitting the hyperparameters (may exceed
             ``n_inducing``; equal to ``n_subsample``, the bound is the exact marginal likelihood of
             the subsample).
@@ -98,7 +82,7 @@ class SparseGP:
     Fitted attributes: ``kernel_``, ``noise_``, ``y_mean_``, ``y_std_``; ``inducing_ (m x dim)``,
     ``L_uu_``, ``L_B_ (m x m)`` and ``alpha_ (m,)`` of the posterior; ``X_subsample_``,
     ``y_subsample_`` (standardised) and ``inducing_subsample_``, the data the hyperparameters were
-    fitted on; ``n_train_`` and ``bound_`` (the bound on all points at the fitted hyperparameters).
+    fitted on; ``n_train_`` and ``bound_`` (the bound on the posterior's points at those hyperparameters).
     """
 
     def __init__(
@@ -108,6 +92,7 @@ class SparseGP:
         *,
         n_inducing: int = 300,
         n_subsample: int = 2000,
+        n_posterior: int | None = None,
         n_inducing_subsample: int = 150,
         inducing: np.ndarray | None = None,
         normalize_y: bool = True,
@@ -122,6 +107,7 @@ class SparseGP:
         self.noise = noise
         self.n_inducing = n_inducing
         self.n_subsample = n_subsample
+        self.n_posterior = n_posterior
         self.n_inducing_subsample = n_inducing_subsample
         self.inducing = inducing
         self.normalize_y = normalize_y
@@ -255,10 +241,10 @@ class SparseGP:
         if self.inducing is not None:
             Z = np.asarray(self.inducing, dtype=float)
         else:
-            # re-seed in the space the kernel sees, so inducing inputs spread along short length-scales
-            pool = rng.choice(n, size=min(n, 20 * m), replace=False) if n > 20 * m else np.arange(n)
-            scaled = X[pool] / self.kernel_.length_scale
-            Z = X[pool][kmeans_plusplus(scaled, m, rng)]
+            Z = choose_inducing(X, m, self.kernel_.length_scale, rng)
+        if self.n_posterior is not None and n > self.n_posterior:
+            rows = np.sort(rng.choice(n, size=self.n_posterior, replace=False))
+            X, ys = X[rows], ys[rows]
         self._posterior(X, ys, Z)
         self.n_train_ = n
         return self
@@ -331,12 +317,31 @@ class SparseGP:
             + 0.5 * (c @ c)
             - 0.5 * (n * kern.variance - noise * np.trace(AAT)) / noise
         )
+        self._prepare_prediction()
 
     # ---- prediction -----------------------------------------------------------------------
-    def _projections(self, X: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        """``t1 = L_uu^-1 k_u(X)`` and ``t2 = L_B^-1 t1``, both ``(m x n)``."""
-        t1 = solve_lower(self.L_uu_, self.kernel_(self.inducing_, X))
-        return t1, solve_lower(self.L_B_, t1)
+    def _prepare_prediction(self) -> None:
+        """``M = K_uu^-1 - Sigma`` from the factors (:meth:`posterior_covariance`), so that ``var(x) = k(x, x) -
+        k_u(x)^T M k_u(x)``: one product instead of two triangular solves per call."""
+        m = self.L_uu_.shape[0]
+        P1 = solve_lower(self.L_uu_, np.eye(m))
+        P2 = solve_lower(self.L_B_, P1)
+        self._M = P1.T @ P1 - P2.T @ P2
+        self._memo: dict[tuple, tuple[np.ndarray, np.ndarray]] = {}
+
+    def _inducing_cross(self, X: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """``k_u(X)`` and ``M k_u(X)``, both ``(m x n)``; kept for the next call with the same ``X`` (by value)."""
+        key = (X.shape, X.tobytes()) if X.shape[0] <= MEMO_ROWS else None
+        hit = self._memo.get(key) if key is not None else None
+        if hit is not None:
+            return hit
+        K = self.kernel_(self.inducing_, X)
+        value = (K, self._M @ K)
+        if key is not None:
+            if len(self._memo) >= MEMO_ENTRIES:
+                self._memo.pop(next(iter(self._memo)))
+            self._memo[key] = value
+        return value
 
     def predict(
         self, X: np.ndarray, return_std: bool = False, return_cov: bool = False, *, observation: bool = False
@@ -350,8 +355,8 @@ class SparseGP:
         if return_std and return_cov:
             raise ValueError("give return_std or return_cov, not both")
         X = np.atleast_2d(np.asarray(X, dtype=float))
-        Ksu = self.kernel_(X, self.inducing_)
-        mean = Ksu @ self.alpha_ * self.y_std_ + self.y_mean_
+        K, MK = self._inducing_cross(X)
+        mean = K.T @ self.alpha_ * self.y_std_ + self.y_mean_
         if return_cov:
             cov = self.posterior_covariance(X)
             if observation:
@@ -359,8 +364,7 @@ class SparseGP:
             return mean, cov
         if not return_std:
             return mean
-        t1, t2 = self._projections(X)
-        var = self.kernel_.diag(X) - (t1**2).sum(0) + (t2**2).sum(0)
+        var = self.kernel_.diag(X) - np.einsum("ij,ij->j", K, MK)
         var = np.maximum(var, 0.0) + (self.noise_ if observation else 0.0)
         return mean, np.sqrt(var) * self.y_std_
 
@@ -370,13 +374,12 @@ class SparseGP:
 
         Titsias (2009): ``k(x, z) - Q(x, z) + k_u(x)^T Sigma k_u(z)`` with ``Q(x, z) = k_u(x)^T K_uu^-1
         k_u(z)`` and ``Sigma = (K_uu + K_uf K_fu / noise)^-1 = L_uu^-T L_B^-T L_B^-1 L_uu^-1`` (from the
-        stored factors, since ``K_uu + K_uf K_fu / noise = L_uu (I + A A^T) L_uu^T``); its diagonal is
-        :meth:`predict`'s variance.
+        stored factors, since ``K_uu + K_uf K_fu / noise = L_uu (I + A A^T) L_uu^T``), i.e. ``k(x, z) -
+        k_u(x)^T M k_u(z)`` with ``M = K_uu^-1 - Sigma``; its diagonal is :meth:`predict`'s variance.
         """
         X = np.atleast_2d(np.asarray(X, dtype=float))
-        t1x, t2x = self._projections(X)
-        t1z, t2z = (t1x, t2x) if Z is None else self._projections(np.atleast_2d(np.asarray(Z, dtype=float)))
-        cov = self.kernel_(X, Z) - t1x.T @ t1z + t2x.T @ t2z
+        Z = None if Z is None else np.atleast_2d(np.asarray(Z, dtype=float))
+        cov = self.kernel_(X, Z) - self._inducing_cross(X)[1].T @ self._inducing_cross(X if Z is None else Z)[0]
         return cov * self.y_std_**2
 
     def sample_y(
@@ -403,6 +406,7 @@ class SparseGP:
             "normalize_y": self.normalize_y,
             "n_inducing": self.n_inducing,
             "n_subsample": self.n_subsample,
+            "n_posterior": self.n_posterior,
             "n_inducing_subsample": self.n_inducing_subsample,
             "has_hyperprior": self.hyperprior is not None,
         }
@@ -430,6 +434,7 @@ class SparseGP:
             params["noise"],
             n_inducing=int(params["n_inducing"]),
             n_subsample=int(params["n_subsample"]),
+            n_posterior=params.get("n_posterior"),
             n_inducing_subsample=int(params["n_inducing_subsample"]),
             normalize_y=bool(params["normalize_y"]),
             optimize=False,
@@ -448,4 +453,5 @@ class SparseGP:
         gp.X_subsample_ = np.asarray(arrays["X_subsample"], dtype=float)
         gp.y_subsample_ = np.asarray(arrays["y_subsample"], dtype=float)
         gp.inducing_subsample_ = np.asarray(arrays["inducing_subsample"], dtype=float)
+        gp._prepare_prediction()
         return gp

@@ -14,8 +14,11 @@ Conventions shared by every feature:
   that row, silently; the other rows are unaffected.
 - A feature that needs a channel the trajectory lacks raises
   :class:`~gapgauge.trajectory.MissingChannelError` naming the feature and the channel. The one
-  derived channel is the centre of pressure: without ``cop_x`` it is computed from the heel and toe
-  forces (:func:`cop_from_foot_forces`).
+  derived channel is the centre of pressure: without ``cop_x`` (``cop_y``) it is computed from the
+  forces and positions of the contact groups the settings name (:func:`cop_from_contacts`; heel and toe
+  on the bundled planar body).
+- Joint torque and positive work sum over the actuated joints the settings name; a 3-D model adds
+  the medio-lateral and 2-D forms of the sway measures (Prieto et al. 1996).
 
 Sources: Prieto et al. (1996), IEEE Trans. Biomed. Eng. 43(9):956-966 (centre-of-pressure measures);
 Schubert and Kirchner (2014), Gait and Posture (the 95% prediction ellipse); Hof, Gazendam and Sinke
@@ -30,21 +33,36 @@ from __future__ import annotations
 
 from ..trajectory import MissingChannelError
 from .base import onset_index
-from .compute import AVAILABLE_FEATURES, BLOCK_SAMPLES, FEATURE_CHANNELS, channels_needed, compute_features
+from .compute import (
+    AVAILABLE_FEATURES,
+    BLOCK_SAMPLES,
+    FEATURE_CHANNELS,
+    channels_needed,
+    compute_features,
+    feature_channels,
+)
 from .effort import peak_joint_torque, positive_work
 from .falls import BODY_CONTACT_FORCE, fell, recovery_time, success
 from .stability import GRAVITY, extrapolated_com, margin_of_stability, margin_of_stability_series
 from .sway import (
     CHI2_95_2DOF,
     MIN_FOOT_LOAD,
+    cop_from_contacts,
     cop_from_foot_forces,
+    cop_mean_distance_2d,
     cop_mean_velocity,
+    cop_mean_velocity_2d,
     cop_path_length,
+    cop_path_length_2d,
     cop_range,
     cop_rms_distance,
+    cop_rms_distance_2d,
+    cop_sway_area,
+    ellipse_area,
     hold_last_defined,
     peak_com_excursion,
     sway_area,
+    sway_area_2d,
 )
 
 __all__ = [
@@ -58,6 +76,15 @@ __all__ = [
     "MissingChannelError",
     "channels_needed",
     "compute_features",
+    "cop_from_contacts",
+    "cop_mean_distance_2d",
+    "cop_mean_velocity_2d",
+    "cop_path_length_2d",
+    "cop_rms_distance_2d",
+    "cop_sway_area",
+    "ellipse_area",
+    "feature_channels",
+    "sway_area_2d",
     "cop_from_foot_forces",
     "cop_mean_velocity",
     "cop_path_length",

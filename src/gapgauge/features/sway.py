@@ -21,6 +21,34 @@ CHI2_95_2DOF = -2.0 * math.log(0.05)
 MIN_FOOT_LOAD = 5.0
 
 
+def cop_from_contacts(
+    forces: list[np.ndarray], positions: list[np.ndarray], min_force: float = MIN_FOOT_LOAD
+) -> np.ndarray:
+    """Centre of pressure (m) from the vertical forces of any number of contact groups: their
+    force-weighted mean position, ``cop = sum_i F_i x_i / sum_i F_i`` (statics: the resultant of parallel
+    forces acts where their moments balance). With two groups (heel and toe) it is the lever rule of
+    :func:`cop_from_foot_forces`, to the last bit.
+
+    Args:
+        forces: one ``(nbatch x nstep)`` array of vertical force in N per contact group.
+        positions: the groups' positions along one horizontal axis, ``(nbatch x nstep)`` m, same order.
+        min_force: N; where the total force is below it the feet are unloaded and the centre of
+            pressure is undefined.
+
+    Returns:
+        ``(nbatch x nstep)`` m, NaN where the feet are unloaded (or an input is NaN); never warns.
+    """
+    total = forces[0]
+    moment = forces[0] * positions[0]
+    for force, position in zip(forces[1:], positions[1:], strict=True):
+        total = total + force
+        moment = moment + force * position
+    with np.errstate(invalid="ignore", divide="ignore"):
+        cop = moment / total
+    cop[~(total >= min_force)] = np.nan
+    return cop
+
+
 def cop_from_foot_forces(
     heel_force: np.ndarray,
     toe_force: np.ndarray,
@@ -169,3 +197,59 @@ def sway_area(com_x: np.ndarray, com_z: np.ndarray) -> np.ndarray:
     det = (sxx * szz - sxz * sxz) / (n - 1) ** 2
     # Rounding can leave a tiny negative determinant for a trace on a line.
     return math.pi * CHI2_95_2DOF * np.sqrt(np.maximum(det, 0.0))
+
+
+def ellipse_area(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """Area of the 95% prediction ellipse of the 2-D trace ``(a, b)``, ``(nbatch x nstep)`` each, in the
+    square of their unit: ``pi * chi2_{0.95,2} * sqrt(det C)``, ``C`` the 2 x 2 sample covariance (divisor
+    n - 1) (Schubert and Kirchner 2014, Gait and Posture). NaN for rows with NaN input or one sample."""
+    return sway_area(a, b)
+
+
+def sway_area_2d(com_x: np.ndarray, com_y: np.ndarray) -> np.ndarray:
+    """Horizontal sway area (m^2) of a 3-D body: the 95% prediction ellipse of the centre-of-mass trace in
+    the horizontal plane ``(com_x, com_y)`` (Schubert and Kirchner 2014), ``(nbatch,)``."""
+    return ellipse_area(com_x, com_y)
+
+
+def cop_sway_area(cop_x: np.ndarray, cop_y: np.ndarray) -> np.ndarray:
+    """Centre-of-pressure sway area (m^2): the 95% prediction ellipse of the COP trace ``(cop_x, cop_y)``
+    (Prieto et al. 1996 give the confidence ellipse; the prediction ellipse after Schubert and Kirchner 2014)."""
+    return ellipse_area(cop_x, cop_y)
+
+
+def cop_path_length_2d(cop_x: np.ndarray, cop_y: np.ndarray) -> np.ndarray:
+    """Centre-of-pressure total excursion in the plane (m): ``sum_i sqrt(dAP_i^2 + dML_i^2)`` (Prieto et al.
+    1996, IEEE TBME 43(9):956-966, TOTEX).
+
+    Args:
+        cop_x, cop_y: anterior-posterior and medio-lateral centre of pressure, ``(nbatch x nstep)`` m.
+
+    Returns:
+        ``(nbatch,)`` m; NaN for rows with NaN input.
+    """
+    return np.sum(np.hypot(np.diff(cop_x, axis=1), np.diff(cop_y, axis=1)), axis=1)
+
+
+def cop_mean_velocity_2d(t: np.ndarray, cop_x: np.ndarray, cop_y: np.ndarray) -> np.ndarray:
+    """Centre-of-pressure mean velocity in the plane (m/s): TOTEX / duration (Prieto et al. 1996, MVELO)."""
+    duration = float(t[-1] - t[0])
+    if duration <= 0.0:
+        return np.full(cop_x.shape[0], np.nan)
+    return cop_path_length_2d(cop_x, cop_y) / duration
+
+
+def _resultant_distance(cop_x: np.ndarray, cop_y: np.ndarray) -> np.ndarray:
+    """``RD = sqrt(AP^2 + ML^2)`` of the mean-removed trace (Prieto et al. 1996), ``(nbatch x nstep)`` m."""
+    return np.hypot(cop_x - cop_x.mean(axis=1, keepdims=True), cop_y - cop_y.mean(axis=1, keepdims=True))
+
+
+def cop_rms_distance_2d(cop_x: np.ndarray, cop_y: np.ndarray) -> np.ndarray:
+    """Centre-of-pressure RMS distance in the plane (m): ``sqrt(mean RD^2)`` (Prieto et al. 1996, RDIST)."""
+    rd = _resultant_distance(cop_x, cop_y)
+    return np.sqrt(np.einsum("ij,ij->i", rd, rd) / cop_x.shape[1])
+
+
+def cop_mean_distance_2d(cop_x: np.ndarray, cop_y: np.ndarray) -> np.ndarray:
+    """Centre-of-pressure mean distance in the plane (m): ``mean RD`` (Prieto et al. 1996, MDIST)."""
+    return _resultant_distance(cop_x, cop_y).mean(axis=1)

@@ -8,18 +8,23 @@ stem (``trial_003.csv`` + ``trial_003.json``)::
     {"params": {name: value}, "robot_id": str, "recorded_at": ISO-8601,
      "outcome": "stood" | "fell" | null, "notes": str, "synthetic": bool}
 
-Log time is seconds since the start of the trial, on the scenario's clock: the disturbance begins at
-``scenario.task.onset``. :func:`read_log` converts every column to SI with the exact factors of
-:mod:`gapgauge.units`, checks the samples (finite, time strictly increasing, no gap longer than
-``max_gap_s``, not slower than ``min_rate_hz``, inside plausible ranges and the compiled model's joint limits),
-resamples every channel by linear interpolation onto a common time base ``k / sample_rate_hz`` over the
-logged span, and low-passes it when ``[hardware].lowpass_hz`` is set (Butterworth, zero phase). Anything
-wrong is refused with a one-line :class:`LogError` naming the file, line and column, what is wrong and
-the fix.
+A CSV log's time is seconds since the start of the trial, on the scenario's clock (the disturbance begins
+at ``scenario.task.onset``); a bag keeps its own clock. Either way the trial is placed in time by the
+sidecar (``disturbance_at``, ``trial_start_at``, ``trigger``) or by the onset estimated from the log
+(:mod:`.align`). :func:`read_log` converts every column to SI with the exact factors of
+:mod:`gapgauge.units` and checks the samples at two levels (:mod:`.checks`): impossible values (not
+finite, time not strictly increasing, a gap longer than ``max_gap_s``, slower than ``min_rate_hz``, an
+angle beyond the compiled model's joint range plus slack) refuse the file with a one-line
+:class:`LogError` naming the file, line and column, what is wrong and the fix; unusual values (beyond the
+plausible range, spikes) are kept as flags per channel. Every channel is then resampled by linear
+interpolation onto ``k / sample_rate_hz`` and low-passed when ``[hardware].lowpass_hz`` is set
+(Butterworth, zero phase). After the matched simulations exist, :mod:`.units_check` compares each
+channel's scale with theirs (a declared unit off by a unit factor refuses the file).
 
-Modules: :mod:`.common` (the trial record, sidecar, checks and resampling every reader shares),
-:mod:`.csv` and :mod:`.bag` (one reader each); this package's :func:`read_log` picks the reader by the
-path. Nothing here touches the store or the simulator.
+Modules: :mod:`.sidecar` (the sidecar and the size check), :mod:`.checks` (the two levels of check),
+:mod:`.align` (placing a trial in time), :mod:`.common` (the trial record and :func:`build_trial`),
+:mod:`.csv` and :mod:`.bag` (one reader each), :mod:`.units_check` (scales against the simulation); this
+package's :func:`read_log` picks the reader by the path. Nothing here touches the store or the simulator.
 
 """
 
@@ -29,22 +34,13 @@ from pathlib import Path
 
 from ..errors import LogError
 from ..scenario import Scenario
+from .align import Alignment, Onset, estimate_onset
 from .bag import read_bag
-from .common import (
-    JOINT_LIMIT_SLACK,
-    MAX_SIDECAR_BYTES,
-    OUTCOMES,
-    SIDECAR_KEYS,
-    LogTrial,
-    Sidecar,
-    Stream,
-    build_trial,
-    check_size,
-    plausible_limits,
-    read_sidecar,
-    sidecar_path_for,
-)
+from .checks import JOINT_LIMIT_SLACK, ChannelFlag, body_mass, body_weight, plausible_limits
+from .common import LogTrial, Stream, build_trial
 from .csv import BLOCK_ROWS, MAX_LINE_BYTES, read_csv, read_csv_stream
+from .sidecar import MAX_SIDECAR_BYTES, OUTCOMES, SIDECAR_KEYS, Sidecar, check_size, read_sidecar, sidecar_path_for
+from .units_check import UnitFinding, check_units
 
 __all__ = [
     "BAG_SUFFIXES",
@@ -54,11 +50,19 @@ __all__ = [
     "MAX_SIDECAR_BYTES",
     "OUTCOMES",
     "SIDECAR_KEYS",
+    "Alignment",
+    "ChannelFlag",
     "LogTrial",
+    "Onset",
     "Sidecar",
     "Stream",
+    "UnitFinding",
+    "body_mass",
+    "body_weight",
     "build_trial",
     "check_size",
+    "check_units",
+    "estimate_onset",
     "plausible_limits",
     "read_bag",
     "read_csv",

@@ -8,11 +8,18 @@ the message and its unit::
     com_z = { topic = "/com", field = "point.z", unit = "m" }
 
 A field is a dotted path of message attributes, each optionally indexed (``position[0]``,
-``wrench.force.z``). A sample's time is the message's ``header.stamp`` when it has one, else the time
-the bag recorded it; time is counted from the earliest sample of any mapped topic (the start of the
-trial). Each topic is checked like a CSV log (finite, increasing, no long gaps, fast enough, plausible)
-and resampled onto the common time base. The sidecar JSON has the bag's stem: ``trial_007/`` (a
-folder) or ``trial_007.mcap`` -> ``trial_007.json``.
+``wrench.force.z``). A sample's time is the message's ``header.stamp`` when it has one (a stamp of zero
+is a stamp too: a bag recorded on simulated time starts there), else the time the bag recorded it;
+``stamp = "record"`` in a channel's entry takes the recorded time even when the message has a header
+(for a publisher that leaves the header unset). A bag's clock is not the scenario's: the trial is placed
+in time by the sidecar's ``disturbance_at``, ``trial_start_at`` or ``trigger``, or else by the onset
+estimated from the log, never silently from the first message (:mod:`gapgauge.logs.align`). Each topic is
+checked like a CSV log (:mod:`gapgauge.logs.checks`) and resampled onto the common time base.
+
+The sidecar JSON has the bag's stem: ``trial_007/`` (a folder) or ``trial_007.mcap`` ->
+``trial_007.json``; a file inside a bag folder without its own sidecar uses the folder's. A trial's
+identity is its content (every message's topic, type, time and bytes, then the sidecar's bytes), not its
+path: the folder and the file inside it are the same trial.
 """
 
 from __future__ import annotations
@@ -26,9 +33,10 @@ import numpy as np
 
 from ..errors import LogError
 from ..scenario import BagChannel, Scenario
-from ..trajectory import CHANNELS
+from ..trajectory import channel_dimension
 from ..units import factor
-from .common import LogTrial, Stream, build_trial, check_size, read_sidecar, sidecar_path_for
+from .common import LogTrial, Stream, TriggerSamples, build_trial
+from .sidecar import check_size, read_sidecar, sidecar_path_for
 
 _FIELD = re.compile(r"^[A-Za-z_][A-Za-z0-9_]*(\[\d+\])?(\.[A-Za-z_][A-Za-z0-9_]*(\[\d+\])?)*$")
 _TOKEN = re.compile(r"([A-Za-z_][A-Za-z0-9_]*)|\[(\d+)\]")
@@ -58,17 +66,11 @@ def field_value(message: Any, path: list[str | int]) -> float:
     return float(value)
 
 
-def bag_sha256(path: Path) -> Any:
-    """sha256 over a bag's bytes: a file, or every file of a folder in name order (with its relative name)."""
-    hasher = hashlib.sha256()
-    files = sorted(p for p in path.rglob("*") if p.is_file()) if path.is_dir() else [path]
-    for f in files:
-        if path.is_dir():
-            hasher.update(str(f.relative_to(path)).encode() + b"\0")
-        with f.open("rb") as fh:
-            for chunk in iter(lambda fh=fh: fh.read(1 << 20), b""):
-                hasher.update(chunk)
-    return hasher
+def _message_digest(hasher: Any, topic: str, msgtype: str, stamp: int, data: bytes) -> None:
+    """Feed one message to the trial's content hash (its length first, so messages cannot run together)."""
+    head = f"{topic}\0{msgtype}\0{int(stamp)}\0{len(data)}\0".encode()
+    hasher.update(head)
+    hasher.update(bytes(data))
 
 
 def read_bag(scenario: Scenario, path: str | Path) -> LogTrial:
@@ -108,6 +110,16 @@ def read_bag(scenario: Scenario, path: str | Path) -> LogTrial:
     check_size(path, size, scenario)
     sidecar = read_sidecar(scenario, sidecar_path_for(path))
 
+    trigger = sidecar.trigger
+    trigger_field = None
+    if trigger is not None and trigger.field is not None:
+        try:
+            trigger_field = parse_field(trigger.field)
+        except ValueError:
+            raise LogError(
+                f"{sidecar.path}: key 'trigger': field {trigger.field!r} is not a field path; write attribute "
+                'names with optional indices, e.g. "data"'
+            ) from None
     fields: dict[str, list[str | int]] = {}
     for ch in hw.bag:
         try:
@@ -124,6 +136,10 @@ def read_bag(scenario: Scenario, path: str | Path) -> LogTrial:
     raw: dict[str, tuple[list[int], dict[str, list[float]]]] = {
         t: ([], {c.channel: [] for c in chs}) for t, chs in by_topic.items()
     }
+    record = {t: any(c.stamp == "record" for c in chs) for t, chs in by_topic.items()}
+    trigger_times: list[int] = []
+    trigger_values: list[float] = []
+    hasher = hashlib.sha256()
     try:
         with AnyReader([path], default_typestore=get_typestore(Stores(DEFAULT_TYPESTORE))) as reader:
             topics = reader.topics
@@ -133,15 +149,36 @@ def read_bag(scenario: Scenario, path: str | Path) -> LogTrial:
                     f"{path}: topic(s) {', '.join(missing)} that [hardware.bag] maps are not in the bag "
                     f"(it has {', '.join(sorted(topics)) or 'no topics'}); record them or fix the scenario"
                 )
-            ignored = sorted(t for t in topics if t not in by_topic)
-            connections = [c for c in reader.connections if c.topic in by_topic]
-            counts = {t: 0 for t in by_topic}
-            for connection, stamp, data in reader.messages(connections=connections):
+            if trigger is not None and trigger.name not in topics:
+                raise LogError(
+                    f"{sidecar.path}: key 'trigger': topic {trigger.name!r} is not in the bag {path} (it has "
+                    f"{', '.join(sorted(topics)) or 'no topics'}); name a topic of the bag"
+                )
+            wanted_topics = set(by_topic) | ({trigger.name} if trigger is not None else set())
+            ignored = sorted(t for t in topics if t not in wanted_topics)
+            counts = {t: 0 for t in wanted_topics}
+            for connection, stamp, data in reader.messages():
                 topic = connection.topic
+                _message_digest(hasher, topic, connection.msgtype, stamp, data)
+                if topic not in wanted_topics:
+                    continue
                 counts[topic] += 1
                 message = reader.deserialize(data, connection.msgtype)
+                if trigger is not None and topic == trigger.name:
+                    trigger_times.append(_stamp_ns(message, stamp, record=False))
+                    if trigger_field is not None:
+                        try:
+                            trigger_values.append(field_value(message, trigger_field))
+                        except (LookupError, TypeError, AttributeError) as exc:
+                            raise LogError(
+                                f"{sidecar.path}: key 'trigger': field {trigger.field!r} of topic {topic!r} "
+                                f"({connection.msgtype}) is not there or not a number ({type(exc).__name__}); "
+                                "name a numeric field"
+                            ) from None
+                if topic not in by_topic:
+                    continue
                 times, values = raw[topic]
-                times.append(_stamp_ns(message, stamp))
+                times.append(_stamp_ns(message, stamp, record=record[topic]))
                 for ch in by_topic[topic]:
                     try:
                         values[ch.channel].append(field_value(message, fields[ch.channel]))
@@ -169,11 +206,15 @@ def read_bag(scenario: Scenario, path: str | Path) -> LogTrial:
         units = {c.channel: c.unit for c in by_topic[topic]}
         labels = {c.channel: f"{topic} {c.field}" for c in by_topic[topic]}
         labels["time"] = f"{topic} stamp"
+        hint = "" if record[topic] else (
+            f" (these are the messages' header stamps: if the publisher of {topic} leaves them unset, set "
+            f'stamp = "record" for its channels in [hardware.bag] to use the time the bag recorded them)'
+        )
         streams.append(
             Stream(
                 t=(np.array(times, dtype=np.int64) - origin) * 1e-9,
                 values={
-                    ch: np.array(v, dtype=float) * factor(units[ch], CHANNELS[ch][0])
+                    ch: np.array(v, dtype=float) * factor(units[ch], channel_dimension(ch))
                     for ch, v in values.items()
                 },
                 units=units | {"time": "s"},
@@ -182,21 +223,28 @@ def read_bag(scenario: Scenario, path: str | Path) -> LogTrial:
                 locate_cell=lambda i, ch, topic=topic, labels=labels: (
                     f"{path}: topic {topic!r} message {i + 1} field {labels.get(ch, ch)!r}"
                 ),
+                table="[hardware.bag]",
+                time_hint=hint,
             )
         )
-    hasher = bag_sha256(path)
+    found = None
+    if trigger is not None:
+        label = f"topic {trigger.name!r}" + (f" field {trigger.field!r}" if trigger.field else "")
+        found = TriggerSamples((np.array(trigger_times, dtype=np.int64) - origin) * 1e-9,
+                               None if trigger_field is None else np.array(trigger_values, dtype=float), label)
     hasher.update(b"\n--sidecar--\n")
     hasher.update(sidecar.raw)
-    return build_trial(scenario, path, streams, sidecar, hasher.hexdigest(), ignored)
+    return build_trial(scenario, path, streams, sidecar, hasher.hexdigest(), ignored, origin=origin * 1e-9,
+                       trigger=found, log_clock_is_scenario=False)
 
 
-def _stamp_ns(message: Any, bag_time_ns: int) -> int:
+def _stamp_ns(message: Any, bag_time_ns: int, record: bool) -> int:
+    """A message's time, ns: its ``header.stamp`` when it has one (zero included), else (or with ``record``)
+    the time the bag recorded it."""
     header = getattr(message, "header", None)
     stamp = getattr(header, "stamp", None)
-    if stamp is not None and hasattr(stamp, "sec") and hasattr(stamp, "nanosec"):
-        ns = int(stamp.sec) * 1_000_000_000 + int(stamp.nanosec)
-        if ns > 0:  # publishers that leave the header empty get the bag's time
-            return ns
+    if not record and stamp is not None and hasattr(stamp, "sec") and hasattr(stamp, "nanosec"):
+        return int(stamp.sec) * 1_000_000_000 + int(stamp.nanosec)
     return int(bag_time_ns)
 
 

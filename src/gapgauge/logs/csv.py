@@ -20,9 +20,10 @@ import numpy as np
 
 from ..errors import LogError, where
 from ..scenario import Scenario
-from ..trajectory import CHANNELS
+from ..trajectory import channel_dimension
 from ..units import factor
-from .common import LogTrial, Stream, build_trial, check_size, read_sidecar, short_repr, sidecar_path_for
+from .common import LogTrial, Stream, TriggerSamples, build_trial
+from .sidecar import check_size, read_sidecar, short_repr, sidecar_path_for
 
 #: largest single line of a CSV log, bytes (a log line is a few hundred bytes; more is not a log)
 MAX_LINE_BYTES = 1 << 20
@@ -38,13 +39,28 @@ def read_csv(scenario: Scenario, path: Path) -> LogTrial:
     """
     if not path.is_file():
         raise LogError(f"{path}: is not a regular file; give a CSV log")
+    if not scenario.hardware.columns:
+        raise LogError(
+            f"{path}: the scenario {scenario.path} maps no CSV columns (it has [hardware.bag] only); give a "
+            "ROS 2 bag, or map the CSV's columns in [hardware.columns] and its time in [hardware.time]"
+        )
     check_size(path, path.stat().st_size, scenario)
     sidecar = read_sidecar(scenario, sidecar_path_for(path))
+    if sidecar.trigger is not None and sidecar.trigger.field is not None:
+        raise LogError(
+            f"{sidecar.path}: key 'trigger': a CSV log's trigger is a column; write \"trigger\": \"column name\""
+        )
+    extra = [] if sidecar.trigger is None else [sidecar.trigger.name]
     hasher = hashlib.sha256()
-    stream, ignored = read_csv_stream(scenario, path, hasher)
+    stream, ignored, extra_values = read_csv_stream(scenario, path, hasher, extra, sidecar.path)
     hasher.update(b"\n--sidecar--\n")
     hasher.update(sidecar.raw)
-    return build_trial(scenario, path, [stream], sidecar, hasher.hexdigest(), ignored)
+    trigger = None
+    if sidecar.trigger is not None:
+        name = sidecar.trigger.name
+        trigger = TriggerSamples(stream.t, extra_values[name], f"column {name!r}")
+        ignored = [c for c in ignored if c != name]
+    return build_trial(scenario, path, [stream], sidecar, hasher.hexdigest(), ignored, trigger=trigger)
 
 
 def _decoded_lines(fh: BinaryIO, path: Path, hasher: Any) -> Iterator[str]:
@@ -78,11 +94,15 @@ def _decoded_lines(fh: BinaryIO, path: Path, hasher: Any) -> Iterator[str]:
         yield text
 
 
-def read_csv_stream(scenario: Scenario, path: Path, hasher: Any) -> tuple[Stream, list[str]]:
-    """Stream a CSV log into a :class:`Stream` in SI; return it and the ignored (unmapped) columns.
+def read_csv_stream(
+    scenario: Scenario, path: Path, hasher: Any, extra: list[str] | None = None, sidecar_path: Path | None = None
+) -> tuple[Stream, list[str], dict[str, np.ndarray]]:
+    """Stream a CSV log into a :class:`Stream` in SI; return it, the ignored (unmapped) columns and the raw
+    values ``(n,)`` of the ``extra`` columns (a trigger named by the sidecar at ``sidecar_path``).
 
     ``hasher`` (a ``hashlib`` object) is fed every raw byte read, so the file is read once.
     """
+    extra = [c for c in (extra or []) if c != scenario.hardware.time_column]
     hw = scenario.hardware
     with path.open("rb") as fh:
         reader = csv.reader(_decoded_lines(fh, path, hasher), strict=True)
@@ -102,6 +122,12 @@ def read_csv_stream(scenario: Scenario, path: Path, hasher: Any) -> tuple[Stream
                         "give each column one name"
                     )
                 seen[name] = i
+            absent = [c for c in extra if c not in seen]
+            if absent:
+                raise LogError(
+                    f"{sidecar_path}: key 'trigger': column {absent[0]!r} is not in {where(path, 1)}; "
+                    "name a column of the log's header"
+                )
             wanted = [(hw.time_column, "time")] + [(c.column, c.channel) for c in hw.columns]
             missing = [(col, ch) for col, ch in wanted if col not in seen]
             if missing:
@@ -112,6 +138,7 @@ def read_csv_stream(scenario: Scenario, path: Path, hasher: Any) -> tuple[Stream
                     "add them or fix [hardware.columns] / [hardware.time] in the scenario"
                 )
             ignored = [n for n in names if n not in {col for col, _ in wanted}]
+            wanted += [(c, f"extra:{c}") for c in extra if c not in {col for col, _ in wanted}]
             index = np.array([seen[col] for col, _ in wanted])
             ncols = len(names)
             blocks: list[np.ndarray] = []
@@ -159,8 +186,10 @@ def read_csv_stream(scenario: Scenario, path: Path, hasher: Any) -> tuple[Stream
     line_of = np.concatenate(line_blocks)
     tfac = factor(hw.time_unit, "time")
     values = {
-        c.channel: data[:, j + 1] * factor(c.unit, CHANNELS[c.channel][0]) for j, c in enumerate(hw.columns)
+        c.channel: data[:, j + 1] * factor(c.unit, channel_dimension(c.channel)) for j, c in enumerate(hw.columns)
     }
+    by_column = {col: data[:, j] for j, (col, _) in enumerate(wanted)}
+    extra_values = {c: by_column[c] for c in extra}
     col_of = {c.channel: seen[c.column] + 1 for c in hw.columns}
     col_of["time"] = seen[hw.time_column] + 1
     stream = Stream(
@@ -171,7 +200,7 @@ def read_csv_stream(scenario: Scenario, path: Path, hasher: Any) -> tuple[Stream
         locate=lambda i: where(path, int(line_of[i])),
         locate_cell=lambda i, ch: f"{where(path, int(line_of[i]), col_of[ch])}",
     )
-    return stream, ignored
+    return stream, ignored, extra_values
 
 
 def _number(cell: str, path: Path, line: int, column: int, name: str) -> float:

@@ -22,7 +22,16 @@ from .sections.budget import budget_section
 from .sections.calibration import calibration_section
 from .sections.common import Figure
 from .sections.decision import Decision, decide
-from .sections.first_screen import SectionStatus, cards, cautions, section_statuses
+from .sections.first_screen import (
+    SectionStatus,
+    budget_card,
+    calibration_card,
+    cards,
+    cautions,
+    section_statuses,
+    stop_card,
+)
+from .sections.motion import motion_section
 from .sections.prior import prior_section
 from .sections.proposals import proposals_section
 from .sections.provenance import provenance_section
@@ -56,6 +65,7 @@ def render(inputs: ReportInputs, json_name: str = "report.json") -> RenderedRepo
     decision = decide(inputs)
     sections = section_statuses(inputs)
     parts = {
+        "motion": motion_section(inputs),
         "sweep": sweep_section(inputs),
         "shift": shift_section(inputs),
         "prior": prior_section(inputs),
@@ -76,6 +86,10 @@ def render(inputs: ReportInputs, json_name: str = "report.json") -> RenderedRepo
         generated_at=inputs.generated_at,
         decision=decision,
         cards=cards(inputs),
+        budget_card=budget_card(inputs),
+        stop_card=stop_card(inputs),
+        calibration_card=calibration_card(inputs),
+        section_numbers={s.name: i for i, s in enumerate(sections, start=1)},
         caution_body=CAUTION_BODY,
         sections=sections,
         trials=trials,
@@ -84,4 +98,18 @@ def render(inputs: ReportInputs, json_name: str = "report.json") -> RenderedRepo
         provenance=provenance_section(inputs, json_name),
         json_name=json_name,
     )
-    return RenderedReport(html, summary_json(inputs, decision, sections), decision, sections, figures)
+    summary = summary_json(inputs, decision, sections, first_screen(inputs, decision))
+    return RenderedReport(html, summary, decision, sections, figures)
+
+
+def first_screen(inputs: ReportInputs, decision: Decision) -> dict[str, Any]:
+    """The first screen's words, as the page shows them (for the JSON summary)."""
+    return {
+        "verdict": decision.verdict,
+        "next_step": decision.next_step,
+        "budget": budget_card(inputs),
+        "stop_rule": stop_card(inputs),
+        "calibration": calibration_card(inputs),
+        "key_figures": cards(inputs),
+        "caution": CAUTION_BODY,
+    }

@@ -20,6 +20,7 @@ from ..records import RolloutBatch, TrialRecord
 from ..results import Result
 from ..scenario import Scenario
 from ..store.db import RunRecord
+from ..trajectory import Trajectory
 
 DEFAULT_STORE_NAME = "gapgauge.sqlite"
 RESULT_KINDS = ("shift", "prior", "proposals", "budget", "calibration")
@@ -38,6 +39,25 @@ def relative(path: str | Path) -> str:
 
 
 @dataclass
+class TrialMotion:
+    """One hardware trial's time series beside those of its matched simulations.
+
+    Attributes:
+        number: the trial's number in the report (1-based, the order of ``ReportInputs.trials``).
+        hardware: the stored, resampled series of the trial (a batch of one), or None when none is stored.
+        simulated: its matched simulations re-simulated (same parameters and physics draws as the match
+            runs) and seen through the logger (:func:`gapgauge.observe.logger_view`), a batch of
+            ``k``; or None when none could be simulated.
+        note: why a part is missing, in words ("" when nothing is).
+    """
+
+    number: int
+    hardware: Trajectory | None
+    simulated: Trajectory | None
+    note: str = ""
+
+
+@dataclass
 class ReportInputs:
     """Everything the report shows.
 
@@ -51,6 +71,9 @@ class ReportInputs:
             when they could be restored, for the prior's plots.
         store_path: the store's file (for the commands the report suggests and the provenance).
         runs: the scenario's runs, oldest first (provenance).
+        motion: per hardware trial its series and its matched simulations' (the motion section); empty
+            when not read.
+        stale: result kind -> why its stored result was left out (stored in an older format).
         generated_at: when the report was made, ISO 8601, UTC.
     """
 
@@ -64,6 +87,8 @@ class ReportInputs:
     calibration: CalibrationResult | None = None
     store_path: str = ""
     runs: list[RunRecord] = field(default_factory=list)
+    motion: list[TrialMotion] = field(default_factory=list)
+    stale: dict[str, str] = field(default_factory=dict)
     generated_at: str = field(default_factory=_now)
 
     @property

@@ -3,22 +3,20 @@ with the hardware value on it, and the standardised residuals against the residu
 
 Both entry points take a :class:`~gapgauge.compare.shift.ShiftReport`: :func:`shift_figures` returns
 PNG bytes per feature (what the HTML report embeds), :func:`plot_shift` writes them as files.
-Matplotlib runs on the Agg backend (no display needed).
+Matplotlib draws on an Agg canvas of its own (no pyplot state, no display); values are shown in the
+unit that suits the feature's size (:mod:`gapgauge.quantities`).
 """
 
 from __future__ import annotations
 
-import io
 import re
 from pathlib import Path
 
-import matplotlib
+import numpy as np
 
-matplotlib.use("Agg")
-import matplotlib.pyplot as plt  # noqa: E402  (after choosing the backend)
-import numpy as np  # noqa: E402
-
-from ..compare.shift import ShiftReport  # noqa: E402
+from ..compare.shift import ShiftReport
+from ..quantities import display_unit, feature_unit, label, to_si, with_unit
+from .plots import figure, png
 
 VERDICT_COLOURS = {
     "carries_over": "#1b7837",
@@ -38,6 +36,7 @@ def feature_png(
     simulated_mean: np.ndarray | None = None,
     simulated_sd: np.ndarray | None = None,
     trial_labels: list[str] | None = None,
+    unit: str | None = None,
 ) -> bytes:
     """One feature's figure as PNG bytes.
 
@@ -51,12 +50,24 @@ def feature_png(
         verdict: printed in the title and sets its colour.
         simulated_mean, simulated_sd: ``(n,)`` feature units, used when ``simulated`` is None.
         trial_labels: ``n`` labels for the x axis.
+        unit: the feature's SI unit (default: :func:`gapgauge.quantities.feature_unit`).
     """
-    hardware = np.asarray(hardware, float)
+    unit = feature_unit(name) if unit is None else unit
+    spread_values = simulated if simulated is not None else simulated_mean
+    shown = display_unit(unit, np.concatenate([np.ravel(np.asarray(hardware, float)),
+                                               np.ravel(np.asarray([] if spread_values is None else spread_values,
+                                                                   float))]))
+
+    def scaled(values):
+        return None if values is None else shown(to_si(1.0, unit)) * np.asarray(values, float)
+
+    hardware, simulated = scaled(hardware), scaled(simulated)
+    simulated_mean, simulated_sd = scaled(simulated_mean), scaled(simulated_sd)
     n = hardware.size
     x = np.arange(n)
     labels = trial_labels or [str(i + 1) for i in range(n)]
-    fig, (ax_dist, ax_res) = plt.subplots(1, 2, figsize=(9.0, 3.4), gridspec_kw={"width_ratios": [3, 2]})
+    fig = figure(9.0, 3.2)
+    ax_dist, ax_res = fig.subplots(1, 2, gridspec_kw={"width_ratios": [3, 2]})
     if simulated is not None:
         sims = np.asarray(simulated, float)
         columns = [row[np.isfinite(row)] for row in sims]
@@ -77,7 +88,7 @@ def feature_png(
     ax_dist.scatter(x, hardware, marker="D", s=36, color="#d6604d", zorder=3, label="hardware")
     ax_dist.set_xticks(x, labels)
     ax_dist.set_xlabel("trial")
-    ax_dist.set_ylabel(name)
+    ax_dist.set_ylabel(with_unit(label(name), shown), fontsize=9)
     ax_dist.legend(loc="best", fontsize=7)
     res = np.asarray(residuals, float)
     finite = np.isfinite(res)
@@ -92,13 +103,9 @@ def feature_png(
     ax_res.set_xlabel("trial")
     ax_res.set_ylabel("(hardware - sim mean) / sim sd")
     ax_res.legend(loc="best", fontsize=7)
-    fig.suptitle(f"{name}: {verdict.replace('_', ' ')}" if verdict else name,
+    fig.suptitle(f"{label(name)}: {verdict.replace('_', ' ')}" if verdict else label(name),
                  color=VERDICT_COLOURS.get(verdict, "black"))
-    fig.tight_layout()
-    buffer = io.BytesIO()
-    fig.savefig(buffer, format="png", dpi=110)
-    plt.close(fig)
-    return buffer.getvalue()
+    return png(fig)
 
 
 def _safe_name(name: str) -> str:
@@ -133,8 +140,8 @@ def plot_shift(report: ShiftReport, plots_dir: str | Path) -> list[Path]:
     out_dir = Path(plots_dir)
     out_dir.mkdir(parents=True, exist_ok=True)
     paths = []
-    for name, png in shift_figures(report).items():
+    for name, image in shift_figures(report).items():
         path = out_dir / f"shift_{_safe_name(name)}.png"
-        path.write_bytes(png)
+        path.write_bytes(image)
         paths.append(path)
     return paths

@@ -1,5 +1,6 @@
-"""The JSON summary written beside the HTML: every figure the first screen shows, every result as
-stored, the trials and the provenance. Nothing here draws or renders."""
+"""The JSON summary written beside the HTML: every figure the first screen shows (and its words, units
+included), the unit and label of every feature, parameter and physical quantity, every result as
+stored (SI, as computed), the trials and the provenance. Nothing here draws or renders."""
 
 from __future__ import annotations
 
@@ -9,6 +10,7 @@ from typing import Any
 
 import numpy as np
 
+from ..quantities import feature_unit, label
 from ..safety import CAUTION
 from ..store.codec import jsonable
 from ..version import __version__
@@ -49,7 +51,19 @@ def _trial(t: Any) -> dict[str, Any]:
     }
 
 
-def summary_json(inputs: ReportInputs, decision: Decision, sections: list[SectionStatus]) -> dict[str, Any]:
+def units(inputs: ReportInputs) -> dict[str, Any]:
+    """Name -> ``{"unit", "label"}`` of each feature (SI, as stored in the results), each policy
+    parameter and each physical quantity (as the scenario declares them)."""
+    scenario = inputs.scenario
+    return {
+        "features": {n: {"unit": feature_unit(n), "label": label(n)} for n in scenario.features.names},
+        "parameters": {p.name: {"unit": p.unit, "label": p.name} for p in scenario.parameters},
+        "physics": {r.name: {"unit": r.unit, "label": label(r.name)} for r in scenario.physics},
+    }
+
+
+def summary_json(inputs: ReportInputs, decision: Decision, sections: list[SectionStatus],
+                 first_screen: dict[str, Any] | None = None) -> dict[str, Any]:
     """The JSON summary (plain JSON types; non-finite numbers become null)."""
     return jsonable(
         {
@@ -66,7 +80,9 @@ def summary_json(inputs: ReportInputs, decision: Decision, sections: list[Sectio
             "next_step": decision.next_step,
             "next_command": decision.command,
             "reasons": list(decision.reasons),
+            "first_screen": first_screen or {},
             "figures": _figures(inputs),
+            "units": units(inputs),
             "sections": {s.name: {"filled": s.filled, "fill_command": s.fill_command} for s in sections},
             "results": {kind: None if r is None else r.to_dict() for kind, r in inputs.results().items()},
             "trials": [_trial(t) for t in inputs.trials],

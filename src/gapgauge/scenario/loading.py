@@ -1,23 +1,32 @@
-"""Load a scenario file: read the TOML, apply ``extends`` overlays, check the model file, build the tables.
+"""Load a scenario file: read the TOML, apply ``extends`` overlays, compile and check the model, build the
+tables, and work out the scenario's identities.
 
 Validation happens here, once, at the edge: unknown keys, wrong types, reversed bounds, safe bounds
-outside bounds, missing or escaping files are refused with a :class:`ScenarioError` that names the
-file, the key path, what is wrong and the fix.
+outside bounds, missing files, a model MuJoCo cannot compile or that lacks a name of the channel map are
+refused with a :class:`ScenarioError` that names the file, the key path, what is wrong and the fix.
 
-A scenario may ``extends = "other.toml"``: the other file is loaded first and this one's tables are
-merged over it key by key (used by calibration overlays).
+The model may be anywhere on disk (absolute, or relative to the scenario file that names it); MuJoCo
+resolves its includes and assets. A scenario may ``extends = "other.toml"`` (relative to it, or
+absolute): the other file is loaded first and this one's tables are merged over it key by key (used by
+calibration overlays).
+
+Identities (:mod:`gapgauge.scenario.identity`): ``content_hash`` is the whole file and the model's bytes;
+``simulation_hash`` only what the stored rollouts depend on (the sweep's key), so editing ``[hardware]``
+columns, ``[shift]``, ``[success]``, objective weights or the description keeps a sweep.
 """
 
 from __future__ import annotations
 
 import copy
-import hashlib
-import json
 import sys
 from pathlib import Path
-from xml.etree import ElementTree
 
 from ..errors import ScenarioError
+from .body import read_model, scenario_channels
+from .controller import read_controller
+from .identity import content_hash, identities, model_digest
+from .model_files import MAX_MODEL_BYTES, check_mjcf, model_files, resolve_model
+from .model_info import compile_body
 from .reader import TableReader, short_repr
 from .space import Scenario
 from .tables import (
@@ -30,7 +39,7 @@ from .tables import (
     read_success,
     read_task,
 )
-from .types import PHYSICS_NAMES
+from .types import PHYSICS_NAMES, PLANAR_BODY
 
 if sys.version_info >= (3, 11):
     import tomllib
@@ -39,6 +48,7 @@ else:  # pragma: no cover
 
 MAX_SCENARIO_BYTES = 1_000_000
 MAX_EXTENDS_DEPTH = 4
+__all__ = ["MAX_EXTENDS_DEPTH", "MAX_MODEL_BYTES", "MAX_SCENARIO_BYTES", "load_scenario"]
 
 
 def _merge(base: dict, over: dict) -> dict:
@@ -73,30 +83,27 @@ def _read_toml(path: Path) -> dict:
         raise ScenarioError(f"{path}: not valid TOML ({exc}); fix the syntax at that line") from None
 
 
-def _resolve_inside(path: Path, key: str, value: str, root: Path, suffix: str) -> Path:
-    """Resolve a path named in a scenario, refusing absolute paths and paths that leave ``root``."""
-    if Path(value).is_absolute():
-        raise ScenarioError(
-            f"{path}: key '{key}': absolute path {value!r} is not allowed; give a path relative to the file"
-        )
-    target = (path.parent / value).resolve()
-    if not target.is_relative_to(root):
-        raise ScenarioError(
-            f"{path}: key '{key}': {value!r} leaves the scenario's project folder {root}; keep files inside it"
-        )
-    if target.suffix.lower() != suffix:
-        raise ScenarioError(f"{path}: key '{key}': {value!r} is not a {suffix} file; name a {suffix} file")
+#: top-level keys whose relative paths are resolved from the file that names them
+_ORIGIN_KEYS = ("model", "controller")
+
+
+def _resolve_extends(path: Path, value: str) -> Path:
+    target = Path(value).expanduser()
+    target = (target if target.is_absolute() else path.parent / target).resolve()
+    if target.suffix.lower() != ".toml":
+        raise ScenarioError(f"{path}: key 'extends': {value!r} is not a .toml file; name the base scenario")
     if not target.is_file():
-        raise ScenarioError(f"{path}: key '{key}': file {value!r} not found (looked at {target}); check the path")
+        raise ScenarioError(f"{path}: key 'extends': file {value!r} not found (looked at {target}); check the path")
     return target
 
 
-def _load_raw(path: Path, root: Path, depth: int = 0) -> tuple[dict, Path]:
-    """Read a scenario and the chain it extends; return the merged tables and the file that named the model."""
+def _load_raw(path: Path, depth: int = 0) -> tuple[dict, dict[str, Path]]:
+    """Read a scenario and the chain it extends; return the merged tables and, for ``model`` and
+    ``controller``, the file whose tables name them (their relative paths start there)."""
     data = _read_toml(path)
     ext = data.pop("extends", None)
     if ext is None:
-        return data, path
+        return data, {key: path for key in _ORIGIN_KEYS}
     if not isinstance(ext, str):
         raise ScenarioError(
             f"{path}: key 'extends': must be a string path, got {short_repr(ext)}; name the base scenario"
@@ -105,38 +112,47 @@ def _load_raw(path: Path, root: Path, depth: int = 0) -> tuple[dict, Path]:
         raise ScenarioError(
             f"{path}: key 'extends': more than {MAX_EXTENDS_DEPTH} levels of extends; flatten the chain"
         )
-    base_path = _resolve_inside(path, "extends", ext, root, ".toml")
-    base, model_origin = _load_raw(base_path, root, depth + 1)
-    return _merge(base, data), (path if "model" in data else model_origin)
+    base, origins = _load_raw(_resolve_extends(path, ext), depth + 1)
+    return _merge(base, data), {key: (path if key in data else origins[key]) for key in _ORIGIN_KEYS}
 
 
 def load_scenario(path: str | Path) -> Scenario:
     """Load and validate a scenario file.
 
-    Paths named inside (``model``, ``extends``) are relative to the file and must stay inside the
-    scenario's project folder: the parent of the folder that holds the file.
+    The model (``model = "file.xml"`` or ``[model] file = ...``) and ``extends`` may be absolute paths or
+    paths relative to the file that names them, anywhere on disk. The model is compiled and every name
+    of its ``[model.channels]`` map checked here, before any simulation.
     """
     path = Path(path).resolve() if Path(path).exists() else Path(path)
-    root = path.parent.parent.resolve()
-    raw, model_origin = _load_raw(path, root)
-    return _build(path, raw, root, model_origin)
+    raw, origins = _load_raw(path)
+    return _build(path, raw, origins)
 
 
-def _build(path: Path, raw: dict, root: Path, model_origin: Path) -> Scenario:
+def _build(path: Path, raw: dict, origins: dict[str, Path]) -> Scenario:
     top = TableReader(path, raw, "")
     name = top.get("name", str, fix='give the scenario a short name, e.g. name = "push_recovery"')
     description = top.get("description", str, "")
-    model_value = top.get("model", str, fix='name the MJCF file, e.g. model = "../models/planar_body.xml"')
-    model_path = _resolve_inside(model_origin, "model", model_value, root, ".xml")
-    _check_mjcf(model_path, path, root)
+    model_value, declared = read_model(top)
+    model_key = "model" if isinstance(raw.get("model"), str) else "model.file"
+    model_path = resolve_model(origins["model"], model_key, model_value)
+    check_mjcf(model_path, path, model_key)
+    body = PLANAR_BODY if declared is None else declared
 
     task = read_task(top.table_at("task", default_empty=False))
-    parameters = read_parameters(top, path)
+    parameters = read_parameters(top, path, body.joint_names)
+    controller = read_controller(top.table_at("controller"), origins["controller"], parameters, task)
+    compiled = compile_body(model_path, body, path, task_kind=task.kind, task_body=task.body,
+                            servos=not controller.is_callable, declared=declared is not None)
+    body, lateral = compiled.body, compiled.lateral
+    if task.direction[1] != 0.0 and not lateral:
+        raise ScenarioError(f"{path}: key 'task.direction': has a sideways component but the model is planar; "
+                            "push along x, or use a 3-D model")
+    channels = scenario_channels(body, lateral, platform=bool(body.platform))
     physics = read_physics(top.table_at("physics", default_empty=False))
-    feats = read_features(top.table_at("features"))
+    feats = read_features(top.table_at("features"), body, lateral)
     objective = read_objective(top.table_at("objective", default_empty=False), feats)
     success = read_success(top.table_at("success"))
-    hardware = read_hardware(top.table_at("hardware", default_empty=False))
+    hardware = read_hardware(top.table_at("hardware", default_empty=False), channels)
     shift = read_shift(top.table_at("shift"))
     cal = top.table_at("calibration")
     cal_names = cal.get("physics", list, list(PHYSICS_NAMES))
@@ -150,12 +166,12 @@ def _build(path: Path, raw: dict, root: Path, model_origin: Path) -> Scenario:
     cal.finish()
     top.finish()
 
-    digest = hashlib.sha256(json.dumps(raw, sort_keys=True, default=str).encode()).hexdigest()
-    digest = hashlib.sha256((digest + hashlib.sha256(model_path.read_bytes()).hexdigest()).encode()).hexdigest()
-    return Scenario(
+    files = model_files(model_path)
+    digest = model_digest(files)
+    scenario = Scenario(
         name=name,
         path=path,
-        content_hash=digest[:16],
+        content_hash=content_hash(raw, digest),
         model_path=model_path,
         description=description,
         task=task,
@@ -168,50 +184,11 @@ def _build(path: Path, raw: dict, root: Path, model_origin: Path) -> Scenario:
         shift=shift,
         calibration_physics=tuple(cal_names),
         raw=raw,
+        body=body,
+        lateral=lateral,
+        channels=channels,
+        controller=controller,
+        model_files=tuple(files),
     )
-
-
-def _check_mjcf(model_path: Path, scenario_path: Path, root: Path) -> None:
-    head = model_path.read_bytes()[:4096]
-    try:
-        text = head.decode("utf-8")
-    except UnicodeDecodeError:
-        raise ScenarioError(
-            f"{scenario_path}: key 'model': {model_path} is not UTF-8 text; name an MJCF (.xml) file"
-        ) from None
-    if "<mujoco" not in text:
-        raise ScenarioError(
-            f"{scenario_path}: key 'model': {model_path} has no <mujoco> element near its start; name an MJCF file"
-        )
-    _check_model_files(model_path, scenario_path, root)
-
-
-# MJCF attributes that name files or folders MuJoCo will read (include, meshes, textures, heightfields)
-_FILE_ATTRIBUTES = ("file", "meshdir", "texturedir", "assetdir")
-MAX_MODEL_BYTES = 20_000_000
-
-
-def _check_model_files(model_path: Path, scenario_path: Path, root: Path) -> None:
-    """Refuse a model whose includes or assets leave the scenario's project folder (or are absolute)."""
-    size = model_path.stat().st_size
-    if size > MAX_MODEL_BYTES:
-        raise ScenarioError(
-            f"{scenario_path}: key 'model': {model_path} is {size} bytes, more than {MAX_MODEL_BYTES}; "
-            "name the MJCF of a planar balancing body"
-        )
-    try:
-        tree = ElementTree.parse(model_path)
-    except ElementTree.ParseError as exc:
-        raise ScenarioError(f"{scenario_path}: key 'model': {model_path} is not well-formed XML ({exc}); "
-                            "fix the MJCF file") from None
-    for element in tree.iter():
-        for attribute in _FILE_ATTRIBUTES:
-            value = element.get(attribute)
-            if value is None:
-                continue
-            target = (model_path.parent / value).resolve()
-            if Path(value).is_absolute() or not target.is_relative_to(root):
-                raise ScenarioError(
-                    f"{scenario_path}: key 'model': {model_path} names {attribute}={value!r} in <{element.tag}>, "
-                    f"which leaves the scenario's project folder {root}; keep model files inside it"
-                )
+    scenario.identity, scenario.trajectory_hash, scenario.simulation_hash = identities(scenario, digest)
+    return scenario

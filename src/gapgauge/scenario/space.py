@@ -14,12 +14,30 @@ from typing import Any
 import numpy as np
 
 from ..errors import ScenarioError
-from .types import FeatureSettings, Hardware, Objective, Parameter, PhysicsRange, ShiftSettings, Task
+from .controller import BUILTIN_CONTROLLER, ControllerSpec
+from .types import (
+    PLANAR_BODY,
+    BodyMap,
+    FeatureSettings,
+    Hardware,
+    Objective,
+    Parameter,
+    PhysicsRange,
+    ShiftSettings,
+    Task,
+)
 
 
 @dataclass
 class Scenario:
-    """A validated scenario. Build with :func:`load_scenario`."""
+    """A validated scenario. Build with :func:`load_scenario`.
+
+    Besides the tables: ``body`` is the resolved ``[model.channels]`` map, ``lateral`` whether the model is
+    3-D, ``channels`` every trajectory channel of its trajectories (name -> (dimension, meaning)),
+    ``controller`` the ``[controller]`` table, ``model_files`` the model's main file, includes and assets;
+    ``simulation_hash`` is the sweep's key and ``trajectory_hash`` the simulation alone (see
+    :mod:`gapgauge.scenario.identity`), ``identity`` their JSON parts.
+    """
 
     name: str
     path: Path
@@ -36,6 +54,23 @@ class Scenario:
     shift: ShiftSettings
     calibration_physics: tuple[str, ...]
     raw: dict[str, Any] = field(repr=False, default_factory=dict)
+    body: BodyMap = PLANAR_BODY
+    lateral: bool = False
+    channels: dict[str, tuple[str, str]] = field(repr=False, default_factory=dict)
+    controller: ControllerSpec = BUILTIN_CONTROLLER
+    model_files: tuple[Path, ...] = ()
+    simulation_hash: str = ""
+    trajectory_hash: str = ""
+    identity: dict[str, Any] = field(repr=False, default_factory=dict)
+
+    @property
+    def joint_names(self) -> tuple[str, ...]:
+        """Trade names of the actuated joints, in channel-map order."""
+        return self.body.joint_names
+
+    @property
+    def controller_kind(self) -> str:
+        return self.controller.kind
 
     # ---- the parameter space -------------------------------------------------------------
     @property
@@ -113,6 +148,7 @@ class Scenario:
             "name": self.name,
             "path": str(self.path),
             "hash": self.content_hash,
+            "simulation_hash": self.simulation_hash,
             "task": self.task.kind,
             "parameters": [p.as_dict() for p in self.parameters],
         }

@@ -7,18 +7,24 @@ the key path in the message) and returns the frozen dataclass of :mod:`gapgauge.
 
 from __future__ import annotations
 
+import math
 from collections.abc import Iterator
 from pathlib import Path
 
-from ..trajectory import CHANNELS, JOINTS
 from ..units import UNITS, units_for
 from .reader import TableReader, short_repr
 from .types import (
+    ALL_FEATURE_NAMES,
+    EXTRA_FEATURE_NAMES,
     FEATURE_NAMES,
+    JOINT_ROLES,
+    LATERAL_FEATURE_NAMES,
     PARAMETER_ROLES,
     PHYSICS_NAMES,
+    PLANAR_BODY,
     TASK_KINDS,
     BagChannel,
+    BodyMap,
     ColumnMap,
     FeatureSettings,
     Hardware,
@@ -30,10 +36,21 @@ from .types import (
 )
 
 
+def _direction(r: TableReader) -> tuple[float, float, float]:
+    value = r.get("direction", list, [1.0, 0.0, 0.0])
+    ok = len(value) == 3 and all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in value)
+    norm = math.sqrt(sum(float(v) ** 2 for v in value)) if ok else 0.0
+    if not ok or not math.isfinite(norm) or norm == 0 or abs(float(value[2])) > 1e-12:
+        raise r.fail("direction", f"must be a horizontal [x, y, 0] vector, got {short_repr(value)}",
+                     "e.g. direction = [1.0, 0.0, 0.0] (forward); it is scaled to unit length")
+    return (float(value[0]) / norm, float(value[1]) / norm, 0.0)
+
+
 def read_task(r: TableReader) -> Task:
     kind = r.get("kind", str)
     if kind not in TASK_KINDS:
         raise r.fail("kind", f"unknown task {kind!r}", f"use one of {', '.join(TASK_KINDS)}")
+    direction = _direction(r) if kind == "push" else (1.0, 0.0, 0.0)
     task = Task(
         kind=kind,
         onset=r.number("onset", nonneg=True),
@@ -42,6 +59,7 @@ def read_task(r: TableReader) -> Task:
         body=r.get("body", str, "trunk"),
         horizon=r.number("horizon", positive=True),
         timestep=r.number("timestep", 0.002, positive=True),
+        direction=direction,
     )
     if task.onset + task.duration >= task.horizon:
         raise r.fail(
@@ -57,7 +75,31 @@ def read_task(r: TableReader) -> Task:
     return task
 
 
-def read_parameters(top: TableReader, path: Path) -> list[Parameter]:
+def _joints_of(r: TableReader, role: str, joints: tuple[str, ...]) -> tuple[str, ...]:
+    """The joints a parameter acts on: ``joint = "name"`` or ``joints = ["a", "b"]`` (trade names)."""
+    if r.has("joint") and r.has("joints"):
+        raise r.fail("joints", "is given with 'joint'", "give one of them")
+    if r.has("joints"):
+        names = r.get("joints", list)
+        if not names or not all(isinstance(n, str) for n in names) or len(set(names)) < len(names):
+            raise r.fail("joints", f"must list distinct joint names, got {short_repr(names)}", 'e.g. ["left_ankle"]')
+        key = "joints"
+    else:
+        one = r.get("joint", str, None)
+        names, key = ([] if one is None else [one]), "joint"
+    if role in JOINT_ROLES:
+        if not names:
+            raise r.fail("joint", f"role {role!r} needs a joint, got None", f"use one of {', '.join(joints)}")
+        for n in names:
+            if n not in joints:
+                raise r.fail(key, f"role {role!r} needs a joint, got {n!r}",
+                             f"use one of {', '.join(joints)} (the actuated joints of [model.channels])")
+    elif names:
+        raise r.fail(key, f"role {role!r} takes no joint", "remove the key")
+    return tuple(names)
+
+
+def read_parameters(top: TableReader, path: Path, joints: tuple[str, ...] = PLANAR_BODY.joint_names) -> list[Parameter]:
     items = top.get("parameters", list, fix="add [[parameters]] tables, one per policy parameter")
     if not 1 <= len(items) <= 40:
         raise top.fail("parameters", f"has {len(items)} entries", "give between 1 and 40 parameters")
@@ -75,12 +117,7 @@ def read_parameters(top: TableReader, path: Path) -> list[Parameter]:
         role = r.get("role", str)
         if role not in PARAMETER_ROLES:
             raise r.fail("role", f"unknown role {role!r}", f"use one of {', '.join(PARAMETER_ROLES)}")
-        joint = r.get("joint", str, None)
-        if role in ("stiffness", "damping", "setpoint", "reaction_offset"):
-            if joint not in JOINTS:
-                raise r.fail("joint", f"role {role!r} needs a joint, got {joint!r}", f"use one of {', '.join(JOINTS)}")
-        elif joint is not None:
-            raise r.fail("joint", f"role {role!r} takes no joint", "remove the key")
+        acts_on = _joints_of(r, role, joints)
         low, high = r.number("low"), r.number("high")
         if not low < high:
             raise r.fail("high", f"bounds are reversed or empty (low {low} >= high {high})", "make low < high")
@@ -97,7 +134,8 @@ def read_parameters(top: TableReader, path: Path) -> list[Parameter]:
         nominal = r.number("nominal", (safe_low + safe_high) / 2)
         if not safe_low <= nominal <= safe_high:
             raise r.fail("nominal", f"{nominal} is outside the safe bounds [{safe_low}, {safe_high}]", "move it inside")
-        out.append(Parameter(name, r.get("unit", str), low, high, safe_low, safe_high, log, role, joint, nominal))
+        out.append(Parameter(name, r.get("unit", str), low, high, safe_low, safe_high, log, role,
+                             acts_on[0] if acts_on else None, nominal, acts_on))
         r.finish()
     return out
 
@@ -129,11 +167,18 @@ def read_physics(r: TableReader) -> list[PhysicsRange]:
     return out
 
 
-def read_features(r: TableReader) -> FeatureSettings:
-    names = r.get("names", list, list(FEATURE_NAMES))
+def read_features(r: TableReader, body: BodyMap = PLANAR_BODY, lateral: bool = False) -> FeatureSettings:
+    """The [features] table; ``body`` and ``lateral`` (from the compiled model) say what the body offers:
+    a 3-D model adds the medio-lateral and 2-D sway features to the default list, a planar model refuses them."""
+    default = [*FEATURE_NAMES, *(LATERAL_FEATURE_NAMES if lateral else ())]
+    names = r.get("names", list, default)
     for n in names:
-        if n not in FEATURE_NAMES:
-            raise r.fail("names", f"unknown feature {n!r}", f"use names from: {', '.join(FEATURE_NAMES)}")
+        if n not in ALL_FEATURE_NAMES:
+            raise r.fail("names", f"unknown feature {n!r}", f"use names from: {', '.join(ALL_FEATURE_NAMES)}")
+        needs = LATERAL_FEATURE_NAMES.get(n) or EXTRA_FEATURE_NAMES.get(n)
+        if needs and not lateral:
+            raise r.fail("names", f"feature {n!r} needs channel {needs!r} (medio-lateral), which a planar model "
+                         "does not have", "drop it, or use a 3-D model ([model.channels] lateral = true)")
     if "fell" not in names:
         names = ["fell", *names]
     fs = FeatureSettings(
@@ -142,6 +187,11 @@ def read_features(r: TableReader) -> FeatureSettings:
         fall_trunk_pitch=r.number("fall_trunk_pitch", 1.2, positive=True),
         recovery_speed=r.number("recovery_speed", 0.05, positive=True),
         leg_length=r.number("leg_length", 0.66, positive=True),
+        joints=body.joint_names,
+        contacts=tuple(c.name for c in body.contacts),
+        rear=body.rear,
+        front=body.front,
+        lateral=lateral,
     )
     r.finish()
     return fs
@@ -169,7 +219,7 @@ def read_objective(r: TableReader, feats: FeatureSettings) -> Objective:
 def read_success(r: TableReader) -> dict[str, float]:
     out = {}
     for name in list(r.table):
-        if name not in FEATURE_NAMES or name == "fell":
+        if name not in ALL_FEATURE_NAMES or name == "fell":
             raise r.fail(
                 name,
                 "is not a feature",
@@ -180,15 +230,21 @@ def read_success(r: TableReader) -> dict[str, float]:
     return out
 
 
-def channel_tables(r: TableReader) -> Iterator[tuple[str, TableReader, str]]:
-    """Each ``channel = {..., unit = ...}`` entry of a hardware table, with its unit checked against the
-    channel's dimension; the caller reads the other keys before the entry is finished."""
+def _unknown_channel(r: TableReader, channel: str, channels: dict[str, tuple[str, str]]) -> Exception:
+    listed = ", ".join(list(channels)[:30]) + (" ..." if len(channels) > 30 else "")
+    return r.fail(channel, "is not a trajectory channel of this scenario's body", f"use channels from: {listed}")
+
+
+def channel_tables(r: TableReader, channels: dict[str, tuple[str, str]]) -> Iterator[tuple[str, TableReader, str]]:
+    """Each ``channel = {..., unit = ...}`` entry of a hardware table (a channel of ``channels``, the
+    scenario's: name -> (dimension, meaning)), with its unit checked against the channel's dimension; the
+    caller reads the other keys before the entry is finished."""
     for channel in list(r.table):
-        if channel not in CHANNELS:
-            raise r.fail(channel, "is not a trajectory channel", f"use channels from: {', '.join(CHANNELS)}")
+        if channel not in channels:
+            raise _unknown_channel(r, channel, channels)
         c = r.table_at(channel, default_empty=False)
         unit = c.get("unit", str)
-        dim = CHANNELS[channel][0]
+        dim = channels[channel][0]
         if unit not in UNITS or UNITS[unit][0] != dim:
             raise c.fail("unit", f"{unit!r} is not a unit of {dim}", f"use one of {', '.join(units_for(dim))}")
         yield channel, c, unit
@@ -196,22 +252,25 @@ def channel_tables(r: TableReader) -> Iterator[tuple[str, TableReader, str]]:
     r.finish()
 
 
-def read_hardware(r: TableReader) -> Hardware:
-    time_r = r.table_at("time", default_empty=False)
-    time_column = time_r.get("column", str)
+def read_hardware(r: TableReader, channels: dict[str, tuple[str, str]]) -> Hardware:
+    """The [hardware] table; ``channels`` are the scenario's trajectory channels (name -> dimension, meaning)."""
+    # a bag-only scenario ([hardware.bag] and no [hardware.columns]) needs no CSV time column either
+    bag_only = r.has("bag") and not r.has("columns")
+    time_r = r.table_at("time", default_empty=bag_only)
+    time_column = time_r.get("column", str, "" if bag_only else ...)
     time_unit = time_r.get("unit", str, "s")
     if time_unit not in units_for("time"):
         raise time_r.fail("unit", f"unknown time unit {time_unit!r}", f"use one of {', '.join(units_for('time'))}")
     time_r.finish()
     columns = [ColumnMap(channel, c.get("column", str), unit)
-               for channel, c, unit in channel_tables(r.table_at("columns", default_empty=False))]
-    bag = [BagChannel(channel, c.get("topic", str), c.get("field", str), unit)
-           for channel, c, unit in channel_tables(r.table_at("bag"))]
+               for channel, c, unit in channel_tables(r.table_at("columns", default_empty=bag_only), channels)]
+    bag = [BagChannel(channel, c.get("topic", str), c.get("field", str), unit, _bag_stamp(c))
+           for channel, c, unit in channel_tables(r.table_at("bag"), channels)]
     plaus_r = r.table_at("plausible")
     plausible = {}
     for channel in list(plaus_r.table):
-        if channel not in CHANNELS:
-            raise plaus_r.fail(channel, "is not a trajectory channel", f"use channels from: {', '.join(CHANNELS)}")
+        if channel not in channels:
+            raise _unknown_channel(plaus_r, channel, channels)
         pair = plaus_r.get(channel, list)
         if (
             len(pair) != 2
@@ -235,6 +294,7 @@ def read_hardware(r: TableReader) -> Hardware:
         max_file_mb=r.number("max_file_mb", 200.0, positive=True),
         bag=tuple(bag),
         plausible=plausible,
+        onset_tolerance_s=r.number("onset_tolerance_s", 0.01, positive=True),
     )
     if hw.lowpass_hz is not None and hw.lowpass_hz >= hw.min_rate_hz / 2:
         raise r.fail(
@@ -244,6 +304,14 @@ def read_hardware(r: TableReader) -> Hardware:
         )
     r.finish()
     return hw
+
+
+def _bag_stamp(c: TableReader) -> str:
+    stamp = c.get("stamp", str, "header")
+    if stamp not in ("header", "record"):
+        raise c.fail("stamp", f"must be \"header\" or \"record\", got {stamp!r}",
+                     'use "record" for a topic whose publisher leaves header.stamp unset')
+    return stamp
 
 
 def read_shift(r: TableReader) -> ShiftSettings:

@@ -1,11 +1,13 @@
 """Open-loop inputs for ``mujoco.rollout``: servo set-points, the timed reaction, push or platform motion.
 
-The controller under test is a set of position servos holding a standing posture, plus a corrective
-reaction: a timed step of the set-points (DEVELOPERS.md, "Policy parameters"). Both are open loop, so a
-whole rollout's inputs are one array, built here, vectorised over the batch.
+The built-in controller is a set of position servos, one per actuated joint of the scenario's
+``[model.channels]`` map, holding a standing posture, plus a corrective reaction: a timed step of the
+set-points (DEVELOPERS.md, "Policy parameters"). Each parameter is tied to its joints by name; a joint
+with no set-point parameter holds its reference angle (``qpos0``). Both are open loop, so a whole
+rollout's inputs are one array, built here, vectorised over the batch.
 
 Each control vector follows ``CONTROL_SPEC = mjSTATE_CTRL | mjSTATE_XFRC_APPLIED``: first ``ctrl``
-(``nu``: ankle, knee, hip servo set-points in rad, platform drive target in m), then ``xfrc_applied``
+(``nu``: the servo set-points in rad, the platform drive target in m, 0 for other actuators), then ``xfrc_applied``
 (``nbody x 6``: force N then torque N m, world frame, applied at the body's centre of mass). MuJoCo
 lays out a state vector's components in the order of their ``mjtState`` bits (``mj_getState``), so
 the offsets come from ``mj_stateSize`` of the components before each one.
@@ -21,7 +23,7 @@ import mujoco
 import numpy as np
 
 from ..scenario import Scenario
-from .model import _load, joint_columns, physics_column
+from .model import _load, joint_columns, lowest_point, physics_column
 
 CONTROL_SPEC: int = int(mujoco.mjtState.mjSTATE_CTRL | mujoco.mjtState.mjSTATE_XFRC_APPLIED)
 STATE_SPEC: int = int(mujoco.mjtState.mjSTATE_FULLPHYSICS)
@@ -49,9 +51,10 @@ def minimum_jerk(t: np.ndarray, onset: float, duration: float) -> np.ndarray:
 
 
 def setpoints(scenario: Scenario, params: np.ndarray) -> np.ndarray:
-    """Standing set-points of ankle, knee and hip, ``(n x 3)`` rad (0 where the scenario has none)."""
+    """Standing set-points of the actuated joints, ``(n x njoint)`` rad, map order (the joint's reference
+    angle where no parameter sets one)."""
     params = np.atleast_2d(np.asarray(params, dtype=float))
-    out = np.zeros((params.shape[0], 3))
+    out = np.tile(_load(scenario)[1].joint_qpos0, (params.shape[0], 1))
     for j, c in joint_columns(scenario, "setpoint").items():
         out[:, j] = params[:, c]
     return out
@@ -84,7 +87,7 @@ def build_controls(
         ``(n x nstep x ncontrol)`` float64, ``ncontrol = nu + 6 nbody`` (see :data:`CONTROL_SPEC`):
         servo set-points (rad), platform target (m), applied body wrenches (N, N m).
     """
-    base, lay = _load(scenario.model_path, scenario.path)
+    base, lay = _load(scenario)
     params = np.atleast_2d(np.asarray(params, dtype=float))
     physics = np.atleast_2d(np.asarray(physics, dtype=float))
     n = params.shape[0]
@@ -107,7 +110,7 @@ def build_controls(
     # Half a step of slack so a window edge that falls on a sample instant is not lost to rounding.
     eps = 0.5 * task.timestep
     window = (t[None, :] >= start[:, None] - eps) & (t[None, :] < stop[:, None] - eps)
-    offsets = np.zeros((n, 3))
+    offsets = np.zeros((n, len(lay.servo_ids)))
     for j, c in joint_columns(scenario, "reaction_offset").items():
         offsets[:, j] = params[:, c]
     stand = setpoints(scenario, params)
@@ -128,31 +131,65 @@ def build_controls(
             raise ValueError(f"scenario {scenario.name!r}: task.body {task.body!r} is not a model body")
         x0 = _offset(base, CONTROL_SPEC, mujoco.mjtState.mjSTATE_XFRC_APPLIED)
         push = (t >= task.onset - eps) & (t < task.onset + task.duration - eps)
-        out[:, push, x0 + 6 * body] = (task.magnitude * scale)[:, None]
+        for axis, component in enumerate(task.direction):
+            if component != 0.0:  # (an exact 1.0 along x leaves the force as the magnitude itself)
+                force = task.magnitude * scale if component == 1.0 else task.magnitude * component * scale
+                out[:, push, x0 + 6 * body + axis] = force[:, None]
     return out
 
 
 def initial_state(scenario: Scenario, params: np.ndarray) -> np.ndarray:
     """Initial full-physics states, ``(n x nstate)`` (``mjSTATE_FULLPHYSICS``).
 
-    Joints at their standing set-points, every velocity zero, the foot flat with the heel and toe spheres
-    just touching the platform top, the platform at rest at 0, and each servo's lag state (activation)
-    at its set-point so no servo starts with a step.
+    Joints at their standing set-points, every velocity zero, the platform at rest at 0, each servo's
+    lag state (activation) at its set-point so no servo starts with a step; a floating body turned so the
+    first contact point's segment (a foot) has its reference orientation, then lifted or lowered so its
+    lowest colliding point just touches the support surface (the bundled planar body: the foot flat, heel
+    and toe spheres on the platform top).
     """
-    base, lay = _load(scenario.model_path, scenario.path)
+    base, lay = _load(scenario)
     stand = setpoints(scenario, params)
     n = stand.shape[0]
     data = mujoco.MjData(base)
-    data.qpos[:] = base.qpos0
-    data.qpos[lay.root_qpos[1]] = lay.root_z0
     one = np.empty(mujoco.mj_stateSize(base, STATE_SPEC))
-    mujoco.mj_getState(base, data, one, STATE_SPEC)
-    out = np.tile(one, (n, 1))
     q0 = _offset(base, STATE_SPEC, mujoco.mjtState.mjSTATE_QPOS)
     a0 = _offset(base, STATE_SPEC, mujoco.mjtState.mjSTATE_ACT)
+    out = np.empty((n, one.size))
+    for i in range(n):
+        data.qpos[:] = base.qpos0
+        data.qpos[lay.joint_qpos] = stand[i]
+        if lay.free_qpos >= 0:
+            _level(base, data, lay)
+        elif lay.level_qpos >= 0:  # a planar body on a pitch hinge: turn it back by the feet's pitch
+            mujoco.mj_kinematics(base, data)
+            data.qpos[lay.level_qpos] -= lay.level_sign * _pitch_change(data, lay)
+        if lay.height_qpos >= 0:
+            mujoco.mj_kinematics(base, data)
+            data.qpos[lay.height_qpos] += lay.support_z - lowest_point(base, data, lay.body_geoms)
+        mujoco.mj_getState(base, data, one, STATE_SPEC)
+        out[i] = one
     out[:, q0 + lay.joint_qpos] = stand
-    out[:, a0 + lay.servo_act] = stand
+    driven = lay.servo_act >= 0
+    out[:, a0 + lay.servo_act[driven]] = stand[:, driven]
     return out
+
+
+def _pitch_change(data: mujoco.MjData, lay) -> float:
+    """Pitch (about world y) of the foot now, relative to its reference orientation, rad."""
+    rot = data.xmat[lay.foot_body].reshape(3, 3) @ lay.foot_xmat0.T
+    return float(np.arctan2(rot[0, 2], rot[2, 2]))
+
+
+def _level(model: mujoco.MjModel, data: mujoco.MjData, lay) -> None:
+    """Turn the free-floating body (``data.qpos``, in place) so the foot has its reference orientation."""
+    mujoco.mj_kinematics(model, data)
+    turn = lay.foot_xmat0 @ data.xmat[lay.foot_body].reshape(3, 3).T  # world rotation taking the foot back
+    q_turn = np.empty(4)
+    mujoco.mju_mat2Quat(q_turn, turn.reshape(-1))
+    quat = data.qpos[lay.free_qpos + 3:lay.free_qpos + 7].copy()
+    out = np.empty(4)
+    mujoco.mju_mulQuat(out, q_turn, quat)
+    data.qpos[lay.free_qpos + 3:lay.free_qpos + 7] = out
 
 
 def state_offsets(model: mujoco.MjModel) -> dict[str, int]:

@@ -3,17 +3,20 @@
 Gains and physics live in the model, so one :class:`mujoco.MjModel` per rollout carries everything
 that differs between rollouts except the open-loop inputs (see :mod:`gapgauge.sim.controls`).
 
-What a rollout's model gets (DEVELOPERS.md, "Policy parameters" and "Physics draw"):
+The model is the scenario's compiled MJCF (:func:`gapgauge.scenario.model_info.compiled`: checked against
+its ``[model.channels]`` map, with any sensor the channels need added). What a rollout's model gets
+(DEVELOPERS.md, "Policy parameters" and "Physics draw"):
 
-- servo ``kp`` / ``kv`` per joint from the ``stiffness`` / ``damping`` parameters. MuJoCo's position
-  actuator computes ``force = gainprm[0] * act + biasprm[1] * q + biasprm[2] * qdot``, so
-  ``gainprm[0] = kp``, ``biasprm[1] = -kp``, ``biasprm[2] = -kv`` (MuJoCo XML reference, <position>);
-- ``servo_strength`` scales kp, kv and the torque limits (``forcerange``);
-- ``servo_lag`` (s) is the servo's first-order time constant, ``actuator_dynprm[:, 0]``;
+- servo ``kp`` / ``kv`` of each actuated joint from the ``stiffness`` / ``damping`` parameters tied to it
+  by name (joints without one keep the MJCF's gains). MuJoCo's position actuator computes
+  ``force = gainprm[0] * act + biasprm[1] * q + biasprm[2] * qdot``, so ``gainprm[0] = kp``,
+  ``biasprm[1] = -kp``, ``biasprm[2] = -kv`` (MuJoCo XML reference, <position>);
+- ``servo_strength`` scales kp, kv and the torque limits (``forcerange``) of those servos;
+- ``servo_lag`` (s) is the servos' first-order time constant, ``actuator_dynprm[:, 0]``;
 - ``trunk_mass_scale`` scales the trunk's mass and inertia;
 - ``friction`` is the sliding coefficient of every geom that can touch another. MuJoCo combines two
-  geoms' coefficients by their maximum, so setting only the feet would leave the platform's 1.0 in charge;
-- ``joint_damping`` (N m s/rad) is the passive damping of the ankle, knee and hip;
+  geoms' coefficients by their maximum, so setting only the feet would leave the floor's in charge;
+- ``joint_damping`` (N m s/rad) is the passive damping of the actuated joints;
 - the scenario's time step goes into ``opt.timestep``.
 
 After a mass change the model's derived constants (``body_subtreemass``, which the subtree
@@ -25,144 +28,219 @@ from __future__ import annotations
 
 import copy
 from dataclasses import dataclass
-from pathlib import Path
 
 import mujoco
 import numpy as np
 
-from ..errors import ScenarioError
-from ..scenario import Scenario, compile_model
-from ..trajectory import JOINTS
+from ..scenario import Scenario
+from ..scenario.model_info import compiled
+from ..scenario.sensors import SensorPlan
 
-#: servo actuator of each joint, in JOINTS order (names in models/planar_body.xml)
-SERVOS: tuple[str, ...] = ("ankle_servo", "knee_servo", "hip_servo")
-PLATFORM_DRIVE = "platform_drive"
-TRUNK = "trunk"
-ROOT_BODY = "foot"
-ROOT_JOINTS: tuple[str, ...] = ("root_x", "root_z", "root_pitch")
-PLATFORM_JOINT = "platform_x"
-PLATFORM_GEOM = "platform_top"
-FOOT_CONTACTS: tuple[str, ...] = ("heel", "toe")
+OBJ = mujoco.mjtObj
 
 
 @dataclass(frozen=True)
 class ModelLayout:
-    """Indices into a model built from the planar body MJCF, looked up once by name.
+    """Indices into the scenario's compiled model, looked up once by name.
 
     Attributes:
-        servo_ids: actuator id of the ankle, knee and hip servo, ``(3,)``.
-        platform_drive_id: actuator id of the platform drive.
-        joint_qpos: qpos address of ankle, knee and hip, ``(3,)``.
-        joint_dof: dof address of ankle, knee and hip, ``(3,)``.
-        root_qpos: qpos address of root_x, root_z, root_pitch, ``(3,)``.
-        platform_qpos: qpos address of the platform slide.
+        joint_names: trade names of the actuated joints (channel names), ``(njoint,)``.
+        contact_groups: names of the contact groups (channel names), map order.
+        servo_ids: actuator id of each actuated joint's servo, ``(njoint,)``.
+        platform_drive_id: actuator id of the platform drive (-1 without a platform).
+        joint_qpos, joint_dof: qpos and dof address of each actuated joint, ``(njoint,)``.
+        joint_qpos0: reference angle of each actuated joint (its set-point when no parameter sets one), rad.
+        platform_qpos: qpos address of the platform slide (-1 without).
         trunk_id: body id of the trunk.
         contact_geoms: ids of every geom that can collide, ``(ngeom_contact,)``.
+        body_geoms: colliding geoms of the body (``com_body``'s subtree): the lowest touches the support.
+        height_qpos: qpos address of the body's vertical coordinate (a z slide, or a free joint's z); -1 fixed.
+        free_qpos: qpos address of the body's free joint (-1 without): its orientation levels the feet.
+        level_qpos, level_sign: qpos address and world-axis sign of the body's own pitch hinge (a planar
+            body whose feet hang below a floating trunk; -1 without, or when the feet are the root).
+        foot_body: body of the first contact point (levelled to its reference orientation).
+        foot_xmat0: that body's orientation at the reference pose, ``(3 x 3)``.
         sensor: sensor name -> (address, dimension) in ``sensordata``.
-        servo_act: activation index of each servo (``actuator_actadr``), ``(3,)``.
-        base_forcerange: torque limits of the three servos in the MJCF, ``(3 x 2)`` N m.
-        root_z0: root_z (m) that puts the heel and toe spheres exactly on the platform top.
-        support_z: height of the platform top, m (the reference for ``com_z``).
+        plan: where each channel's raw values are (:class:`~gapgauge.scenario.sensors.SensorPlan`).
+        servo_act: activation index of each servo (``actuator_actadr``, -1 for none), ``(njoint,)``.
+        base_forcerange: torque limits of the servos in the MJCF, ``(njoint x 2)`` N m.
+        root_z0: height coordinate that puts the body's lowest colliding point on the support, reference pose.
+        support_z: height of the support surface, m (the reference for ``com_z``).
+        lateral: True for a 3-D model.
     """
 
+    joint_names: tuple[str, ...]
+    contact_groups: tuple[str, ...]
     servo_ids: np.ndarray
     platform_drive_id: int
     joint_qpos: np.ndarray
     joint_dof: np.ndarray
-    root_qpos: np.ndarray
+    joint_qpos0: np.ndarray
     platform_qpos: int
     trunk_id: int
     contact_geoms: np.ndarray
+    body_geoms: np.ndarray
+    height_qpos: int
+    free_qpos: int
+    level_qpos: int
+    level_sign: float
+    foot_body: int
+    foot_xmat0: np.ndarray
     sensor: dict[str, tuple[int, int]]
+    plan: SensorPlan
     servo_act: np.ndarray
     base_forcerange: np.ndarray
     root_z0: float
     support_z: float
+    lateral: bool
 
 
-# Layouts by compiled model: the compiled model itself is cached by scenario.compile_model (per path and
-# modification time), so a recompiled file gets a new model object and a fresh layout.
+# Layouts by compiled model: the compiled model is cached by scenario.model_info (per files and map), so a
+# recompiled file gets a new model object and a fresh layout.
 _LAYOUTS: dict[int, tuple[mujoco.MjModel, ModelLayout]] = {}
 
 
-def _load(path: Path, scenario_path: Path | None = None) -> tuple[mujoco.MjModel, ModelLayout]:
-    model = compile_model(path, scenario_path)
+def _load(scenario: Scenario) -> tuple[mujoco.MjModel, ModelLayout]:
+    body = compiled(scenario)
+    model = body.model
     hit = _LAYOUTS.get(id(model))
     if hit is not None and hit[0] is model:
         return model, hit[1]
-    try:
-        layout = _layout(model)
-    except ValueError as exc:  # the model compiles but lacks what the simulator drives (no ankle_servo...)
-        raise ScenarioError(
-            f"{scenario_path or path}: key 'model': MuJoCo cannot use {Path(path).resolve()} ({exc}); "
-            "fix the MJCF file or name the bundled models/planar_body.xml"
-        ) from None
+    layout = _layout(model, body)
     _LAYOUTS[id(model)] = (model, layout)
     return model, layout
 
 
 def base_model(scenario: Scenario) -> mujoco.MjModel:
-    """The compiled MJCF of ``scenario`` (cached per model path and modification time).
-
-    The returned model is shared: copy it (``copy.copy``) before changing any field.
-    """
-    return _load(scenario.model_path, scenario.path)[0]
+    """The compiled MJCF of ``scenario`` (with any sensors gapgauge added), shared: copy it
+    (``copy.copy``) before changing any field."""
+    return _load(scenario)[0]
 
 
 def model_layout(scenario: Scenario) -> ModelLayout:
     """Name lookups of the scenario's model (see :class:`ModelLayout`), cached with the model."""
-    return _load(scenario.model_path, scenario.path)[1]
+    return _load(scenario)[1]
 
 
-def _layout(model: mujoco.MjModel) -> ModelLayout:
-    def ident(kind: mujoco.mjtObj, name: str) -> int:
-        i = mujoco.mj_name2id(model, kind, name)
-        if i < 0:
-            raise ValueError(f"model has no {kind.name[5:].lower()} named {name!r}; gapgauge.sim needs it")
-        return i
+def lowest_point(model: mujoco.MjModel, data: mujoco.MjData, geoms: np.ndarray) -> float:
+    """Lowest height (m) of the geoms ``geoms`` at the pose in ``data`` (after ``mj_kinematics``): exact for
+    spheres, capsules, cylinders, ellipsoids and boxes; the bounding sphere for other shapes."""
+    g = mujoco.mjtGeom
+    low = np.inf
+    for i in geoms:
+        z = float(data.geom_xpos[i, 2])
+        rot = data.geom_xmat[i].reshape(3, 3)
+        size = model.geom_size[i]
+        kind = int(model.geom_type[i])
+        if kind == int(g.mjGEOM_SPHERE):
+            z -= size[0]
+        elif kind == int(g.mjGEOM_CAPSULE):
+            z -= abs(rot[2, 2]) * size[1] + size[0]
+        elif kind == int(g.mjGEOM_CYLINDER):
+            z -= abs(rot[2, 2]) * size[1] + size[0] * np.sqrt(max(0.0, 1.0 - rot[2, 2] ** 2))
+        elif kind == int(g.mjGEOM_BOX):
+            z -= float(np.abs(rot[2]) @ size)
+        elif kind == int(g.mjGEOM_ELLIPSOID):
+            z -= float(np.sqrt(np.sum((rot[2] * size) ** 2)))
+        else:
+            z -= float(model.geom_rbound[i])
+        low = min(low, z)
+    return low
 
-    act = mujoco.mjtObj.mjOBJ_ACTUATOR
-    jnt = mujoco.mjtObj.mjOBJ_JOINT
-    servo_ids = np.array([ident(act, n) for n in SERVOS])
-    joint_ids = np.array([ident(jnt, n) for n in JOINTS])
-    root_ids = np.array([ident(jnt, n) for n in ROOT_JOINTS])
+
+def _layout(model: mujoco.MjModel, body) -> ModelLayout:
+    bmap = body.body
+
+    def ident(kind: OBJ, name: str) -> int:
+        return mujoco.mj_name2id(model, kind, name)
+
+    servo_ids = np.array([ident(OBJ.mjOBJ_ACTUATOR, j.actuator) for j in bmap.joints])
+    joint_ids = np.array([ident(OBJ.mjOBJ_JOINT, j.joint) for j in bmap.joints])
     contact = np.flatnonzero((model.geom_contype != 0) | (model.geom_conaffinity != 0))
-    sensor = {
-        model.sensor(i).name: (int(model.sensor_adr[i]), int(model.sensor_dim[i]))
-        for i in range(model.nsensor)
-    }
+    root = ident(OBJ.mjOBJ_BODY, bmap.com_body)
+    in_body = np.array([_descends(model, int(model.geom_bodyid[gid]), root) for gid in contact], dtype=bool)
+    sensor = {model.sensor(i).name: (int(model.sensor_adr[i]), int(model.sensor_dim[i])) for i in range(model.nsensor)}
 
-    # Heel and toe are spheres under a flat foot: put their lowest points on the platform top.
+    height, free, level, sign = -1, -1, -1, 1.0
     data = mujoco.MjData(model)
     mujoco.mj_kinematics(model, data)
-    platform = ident(mujoco.mjtObj.mjOBJ_GEOM, PLATFORM_GEOM)
-    support_z = float(data.geom_xpos[platform, 2] + model.geom_size[platform, 2])
-    lowest = min(
-        float(data.geom_xpos[g, 2] - model.geom_size[g, 0])
-        for g in (ident(mujoco.mjtObj.mjOBJ_GEOM, n) for n in FOOT_CONTACTS)
-    )
-    root_z_qpos = int(model.jnt_qposadr[root_ids[1]])
-    root_z0 = float(model.qpos0[root_z_qpos] + support_z - lowest)
+    for j in range(int(model.body_jntadr[root]), int(model.body_jntadr[root]) + int(model.body_jntnum[root])):
+        kind = int(model.jnt_type[j])
+        if kind == int(mujoco.mjtJoint.mjJNT_FREE):
+            free = height = int(model.jnt_qposadr[j])
+            height += 2
+        elif kind == int(mujoco.mjtJoint.mjJNT_SLIDE) and abs(abs(data.xaxis[j, 2]) - 1.0) < 1e-9 and height < 0:
+            height = int(model.jnt_qposadr[j])
+        elif kind == int(mujoco.mjtJoint.mjJNT_HINGE) and abs(abs(data.xaxis[j, 1]) - 1.0) < 1e-9 and level < 0:
+            level, sign = int(model.jnt_qposadr[j]), float(np.sign(data.xaxis[j, 1]))
+    platform_drive, platform_qpos = -1, -1
+    if bmap.platform:
+        pid = ident(OBJ.mjOBJ_BODY, bmap.platform)
+        slide = next(j for j in range(model.njnt) if model.jnt_bodyid[j] == pid
+                     and int(model.jnt_type[j]) == int(mujoco.mjtJoint.mjJNT_SLIDE))
+        platform_qpos = int(model.jnt_qposadr[slide])
+        joint_trn = int(mujoco.mjtTrn.mjTRN_JOINT)
+        platform_drive = next(a for a in range(model.nu) if int(model.actuator_trntype[a]) == joint_trn
+                              and model.actuator_trnid[a, 0] == slide)
+    point = bmap.contacts[0].points[0]
+    foot = _point_body(model, point)
+    if foot == root or free >= 0:
+        level = -1  # the feet are the root (nothing to level), or the free joint levels them
+    support_z = body.sensors.support_z
+    root_z0 = 0.0
+    if height >= 0:
+        root_z0 = float(model.qpos0[height] + support_z - lowest_point(model, data, contact[in_body]))
     return ModelLayout(
+        joint_names=bmap.joint_names,
+        contact_groups=tuple(c.name for c in bmap.contacts),
         servo_ids=servo_ids,
-        platform_drive_id=ident(act, PLATFORM_DRIVE),
+        platform_drive_id=int(platform_drive),
         joint_qpos=model.jnt_qposadr[joint_ids].copy(),
         joint_dof=model.jnt_dofadr[joint_ids].copy(),
-        root_qpos=model.jnt_qposadr[root_ids].copy(),
-        platform_qpos=int(model.jnt_qposadr[ident(jnt, PLATFORM_JOINT)]),
-        trunk_id=ident(mujoco.mjtObj.mjOBJ_BODY, TRUNK),
+        joint_qpos0=model.qpos0[model.jnt_qposadr[joint_ids]].copy(),
+        platform_qpos=platform_qpos,
+        trunk_id=ident(OBJ.mjOBJ_BODY, bmap.trunk),
         contact_geoms=contact,
+        body_geoms=contact[in_body],
+        height_qpos=height,
+        free_qpos=free,
+        level_qpos=level,
+        level_sign=sign,
+        foot_body=foot,
+        foot_xmat0=data.xmat[foot].reshape(3, 3).copy(),
         sensor=sensor,
+        plan=body.sensors,
         servo_act=model.actuator_actadr[servo_ids].copy(),
         base_forcerange=model.actuator_forcerange[servo_ids].copy(),
         root_z0=root_z0,
         support_z=support_z,
+        lateral=body.lateral,
     )
 
 
+def _descends(model: mujoco.MjModel, body: int, root: int) -> bool:
+    while body > 0:
+        if body == root:
+            return True
+        body = int(model.body_parentid[body])
+    return False
+
+
+def _point_body(model: mujoco.MjModel, name: str) -> int:
+    """Body carrying the contact point ``name`` (a site, geom or touch sensor)."""
+    sid = mujoco.mj_name2id(model, OBJ.mjOBJ_SITE, name)
+    if sid >= 0:
+        return int(model.site_bodyid[sid])
+    sensor = mujoco.mj_name2id(model, OBJ.mjOBJ_SENSOR, name)
+    if sensor >= 0:
+        return int(model.site_bodyid[model.sensor_objid[sensor]])
+    return int(model.geom_bodyid[mujoco.mj_name2id(model, OBJ.mjOBJ_GEOM, name)])
+
+
 def joint_columns(scenario: Scenario, role: str) -> dict[int, int]:
-    """Parameter column of ``role`` for each joint index (0 ankle, 1 knee, 2 hip) that has one."""
-    return {JOINTS.index(p.joint): c for c, p in enumerate(scenario.parameters) if p.role == role}
+    """Parameter column of ``role`` for each actuated joint index (map order) that has one."""
+    index = {name: i for i, name in enumerate(scenario.joint_names)}
+    return {index[j]: c for c, p in enumerate(scenario.parameters) if p.role == role for j in p.joints}
 
 
 def physics_column(scenario: Scenario, name: str) -> int:
@@ -180,7 +258,7 @@ def build_models(
     """One MjModel per rollout, with its gains and physics set.
 
     Args:
-        scenario: the scenario (model path, parameter roles, physics names, time step).
+        scenario: the scenario (model, parameter roles, physics names, time step).
         params: policy parameters, ``(n x dim)``, scenario units, scenario column order.
         physics: physics draw, ``(n x k)``, scenario ``[physics]`` order.
         out: models from an earlier call on the same scenario to overwrite instead of copying
@@ -190,7 +268,7 @@ def build_models(
     Returns:
         ``n`` models (``out[:n]`` reused first, then new copies of the base model).
     """
-    base, lay = _load(scenario.model_path, scenario.path)
+    base, lay = _load(scenario)
     params = np.atleast_2d(np.asarray(params, dtype=float))
     physics = np.atleast_2d(np.asarray(physics, dtype=float))
     n = params.shape[0]

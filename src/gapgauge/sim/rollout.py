@@ -29,7 +29,7 @@ from __future__ import annotations
 
 import os
 from collections import deque
-from collections.abc import Collection, Iterable, Iterator
+from collections.abc import Iterable, Iterator
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 
@@ -37,58 +37,20 @@ import mujoco
 import mujoco.rollout
 import numpy as np
 
-from ..features import channels_needed, compute_features, cop_from_foot_forces
+from ..features import channels_needed, compute_features
 from ..observe import logger_view
 from ..records import RolloutBatch
 from ..scenario import Scenario
-from ..trajectory import JOINTS, Trajectory
+from ..trajectory import Trajectory
+from .channels import extract
+from .controller import closed_loop
 from .controls import CONTROL_SPEC, STATE_SPEC, build_controls, control_size, initial_state, state_offsets
-from .model import ModelLayout, _load, build_models
+from .model import _load, build_models
 
 #: rollouts per ``mujoco.rollout`` call: about 130 MB of controls, states and sensor data at 1,500
 #: steps, large enough that the per-call overhead is small against the stepping. Two sub-batches are in
 #: flight at a time (see :func:`simulate_chunks`), so the buffers take twice that.
 SUB_BATCH = 128
-
-#: trajectory channels from the sensor data, in the order :func:`_channels` returns them
-_SIM_CHANNELS: tuple[str, ...] = (
-    *(f"{joint}_{kind}" for joint in JOINTS for kind in ("angle", "rate", "torque")),
-    "heel_force", "toe_force", "heel_x", "toe_x", "com_x", "com_z", "com_vx", "com_vz", "trunk_pitch",
-    "body_contact", "platform_x",
-)
-#: channel -> (sensor, component) where they are not named alike
-_SENSOR_OF: dict[str, tuple[str, int]] = {
-    "heel_x": ("heel_pos", 0), "toe_x": ("toe_pos", 0), "com_x": ("com_pos", 0), "com_vx": ("com_vel", 0),
-    "com_vz": ("com_vel", 2),
-}
-
-
-def _channels(sd: np.ndarray, lay: ModelLayout, with_cop: bool,
-              names: Collection[str] | None = None, copy: bool = True) -> dict[str, np.ndarray]:
-    """Trajectory channels (SI), each ``(nbatch x nstep)``, from ``sd (nbatch x nstep x nsensordata)``:
-    all of them, or only ``names`` (the sweep extracts only what its features read); ``cop_x`` too
-    with ``with_cop``. Without ``copy``, channels read straight from one sensor are strided views into
-    ``sd``, valid only while ``sd`` is (the low-pass reads each once, into its own padded copy)."""
-
-    def s(name: str, axis: int = 0) -> np.ndarray:
-        return sd[:, :, lay.sensor[name][0] + axis]
-
-    def channel(name: str) -> np.ndarray:
-        if name == "com_z":
-            return s("com_pos", 2) - lay.support_z
-        if name == "trunk_pitch":
-            # Trunk pitch from vertical: the hinge angles add up along the planar chain (DEVELOPERS.md).
-            return s("root_pitch") + s("ankle_angle") + s("knee_angle") + s("hip_angle")
-        if name == "body_contact":
-            return s("thigh_contact") + s("trunk_contact")
-        values = s(*_SENSOR_OF.get(name, (name, 0)))
-        return values.copy() if copy else values
-
-    ch = {name: channel(name) for name in _SIM_CHANNELS if names is None or name in names}
-    if with_cop:
-        ch["cop_x"] = cop_from_foot_forces(ch["heel_force"], ch["toe_force"], ch["heel_x"], ch["toe_x"])
-    return ch
-
 
 def _divergence(state: np.ndarray, sd: np.ndarray, offsets: dict[str, int], nv: int, dt: float) -> list[str]:
     """Reason each rollout of a sub-batch diverged ("" if it did not); see the module docstring.
@@ -192,13 +154,15 @@ def _pipeline(scenario: Scenario, jobs: Iterable[_Job], nthread: int, sub_batch:
     Results do not depend on the overlap: each stage of a sub-batch runs in the same order on the same
     data as it would alone.
     """
-    base, lay = _load(scenario.model_path, scenario.path)
+    base, lay = _load(scenario)
+    # the one dispatch point of the controller: None steps the built-in (open-loop) controller
+    loop = closed_loop(scenario, base, lay)  # loads a callable's module (runs its code); None for the built-in
     task = scenario.task
     nstep, dt = task.nstep, task.timestep
     names = scenario.features.names
     measured = [name for name in names if name != "fell"]
-    logged = channels_needed(measured)  # what the measured features read, low-passed as a log is
-    raw = channels_needed(["fell"])  # what the fall test reads, unfiltered
+    logged = channels_needed(measured, scenario.features)  # what the measured features read, low-passed as a log is
+    raw = channels_needed(["fell"], scenario.features)  # what the fall test reads, unfiltered
     wanted = set(logged) | set(raw)
     t = np.arange(nstep) * dt
     ncontrol = control_size(base)
@@ -231,12 +195,16 @@ def _pipeline(scenario: Scenario, jobs: Iterable[_Job], nthread: int, sub_batch:
         return job, rows, slot
 
     def step(runner: mujoco.rollout.Rollout, work: tuple[_Job, np.ndarray, _Slot]) -> None:
-        _, rows, slot = work
+        job, rows, slot = work
         m = len(rows)
-        # Shapes and types are fixed above, once; skip_checks also avoids the wrapper's copy of
-        # the control array (its singleton tiling copies even when nothing is tiled).
-        runner.rollout(slot.models[:m], datas, slot.x0, slot.control[:m], control_spec=CONTROL_SPEC,
-                       skip_checks=True, nstep=nstep, state=slot.state[:m], sensordata=slot.sensordata[:m])
+        if loop is None:
+            # Shapes and types are fixed above, once; skip_checks also avoids the wrapper's copy of
+            # the control array (its singleton tiling copies even when nothing is tiled).
+            runner.rollout(slot.models[:m], datas, slot.x0, slot.control[:m], control_spec=CONTROL_SPEC,
+                           skip_checks=True, nstep=nstep, state=slot.state[:m], sensordata=slot.sensordata[:m])
+        else:  # a controller of one's own, called every control period (gapgauge.sim.controller)
+            loop.rollout(runner, slot.models[:m], datas, slot.x0, slot.control[:m], job.params[rows],
+                         state=slot.state[:m], sensordata=slot.sensordata[:m])
 
     def measure(work: tuple[_Job, np.ndarray, _Slot]) -> None:
         job, rows, slot = work
@@ -249,7 +217,7 @@ def _pipeline(scenario: Scenario, jobs: Iterable[_Job], nthread: int, sub_batch:
         keep = job.full is not None
         # Views suffice when nothing is kept: everything read from them is done before this slot's
         # sensor data is overwritten (the sub-batch built into it next is stepped after this returns).
-        ch = _channels(sd, lay, with_cop=keep, names=None if keep else wanted, copy=keep)
+        ch = extract(sd, lay, names=None if keep else wanted, with_cop=keep, copy=keep)
         if keep:
             for name, values in ch.items():
                 job.full.setdefault(name, np.full((len(job.reason), nstep), np.nan))[rows] = values
@@ -320,10 +288,11 @@ def _result(scenario: Scenario, job: _Job, keep: bool) -> RolloutBatch | tuple[R
     n = len(reason)
     full = job.full
     if not full:
-        base, lay = _load(scenario.model_path, scenario.path)
+        base, lay = _load(scenario)
         empty = np.zeros((0, nstep, base.nsensordata))
-        full = {c: np.full((n, nstep), np.nan) for c in _channels(empty, lay, True)}
+        full = {c: np.full((n, nstep), np.nan) for c in extract(empty, lay, with_cop=True)}
     meta = {"source": "simulation", "scenario": scenario.name, "scenario_hash": scenario.content_hash,
+            "simulation_hash": scenario.simulation_hash,
             "indices": job.indices.tolist()}
     return batch, Trajectory(np.arange(nstep) * task.timestep, full, onset=task.onset, meta=meta)
 

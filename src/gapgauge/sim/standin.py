@@ -48,7 +48,7 @@ from scipy.stats import qmc
 
 from ..errors import GapgaugeError, ScenarioError
 from ..scenario import PHYSICS_NAMES, Scenario, load_scenario
-from ..trajectory import CHANNELS
+from ..trajectory import CHANNELS, channel_dimension
 from ..units import UNITS, factor
 from .rollout import simulate
 
@@ -87,10 +87,10 @@ class StandinProfile:
         return np.array([self.physics.get(r.name, r.nominal) for r in scenario.physics], dtype=float)
 
     def noise_sd(self, channel: str) -> float:
-        return self.noise.get(channel, self.noise.get(CHANNELS[channel][0], 0.0))
+        return self.noise.get(channel, self.noise.get(channel_dimension(channel), 0.0))
 
     def bias_of(self, channel: str) -> float:
-        return self.bias.get(channel, self.bias.get(CHANNELS[channel][0], 0.0))
+        return self.bias.get(channel, self.bias.get(channel_dimension(channel), 0.0))
 
 
 def load_profile(path: str | Path, scenario: Scenario) -> StandinProfile:
@@ -153,7 +153,7 @@ def load_profile(path: str | Path, scenario: Scenario) -> StandinProfile:
     sd, bias = {}, {}
     for section, out, low in (("noise", sd, 0.0), ("bias", bias, -math.inf)):
         for key in table(section):
-            if key not in KINDS and key not in CHANNELS:
+            if key not in KINDS and key not in scenario.channels:
                 raise fail(
                     f"{section}.{key}",
                     "is neither a channel kind nor a channel",
@@ -363,7 +363,7 @@ def write_log_csv(path: Path, scenario: Scenario, t: np.ndarray, channels: dict[
     hw = scenario.hardware
     cols = [(hw.time_column, t / UNITS[hw.time_unit][1])]
     for c in hw.columns:
-        cols.append((c.column, channels[c.channel] / factor(c.unit, CHANNELS[c.channel][0])))
+        cols.append((c.column, channels[c.channel] / factor(c.unit, channel_dimension(c.channel))))
     fmt = f"{{:.{DIGITS}g}}"
     with path.open("w", newline="", encoding="utf-8") as fh:
         writer = csv.writer(fh)

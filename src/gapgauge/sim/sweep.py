@@ -2,8 +2,10 @@
 (local threads, a Dask cluster). The store side (which rows are missing, one transaction per chunk)
 is :func:`gapgauge.app.sweep.sweep`.
 
-A sweep is a run of kind ``sweep`` in the store, identified by (scenario version, seed, design,
-planned count, nominal): running the same command again finds the same run. The design is a pure
+A sweep is a run of kind ``sweep`` in the store, identified by (what it simulates, seed, design,
+planned count, nominal): running the same command again finds the same run, and so does a scenario
+whose hardware map, shift thresholds, objective weights or description were edited since (the
+simulation hash, :mod:`gapgauge.scenario.identity`). The design is a pure
 function of the seed (:mod:`gapgauge.sim.design`) and rollout ``i``'s physics draw depends only on
 ``(seed, i)`` (:func:`gapgauge.sim.physics.draw_physics`), so the rows still missing can be
 simulated in any chunking, order or place and give the rows an uninterrupted run would have given.
@@ -28,6 +30,7 @@ from ..errors import GapgaugeError, ScenarioError
 from ..records import RolloutBatch
 from ..results import Result
 from ..scenario import Scenario, load_scenario
+from .controller import check_controller
 from .design import DESIGNS
 from .model import model_layout
 from .rollout import simulate, simulate_chunks
@@ -68,18 +71,20 @@ class SweepSummary(Result):
     rollouts_per_second: float
     nothing_to_do: bool
     units: dict[str, str] = field(default_factory=dict)  # parameter name -> unit
+    stale: list[str] = field(default_factory=list)  # earlier runs of these settings it could not use, and why
 
     kind = "sweep"
     schema_version = 1
 
 
 def check_model(scenario: Scenario) -> None:
-    """Compile the scenario's MJCF once, so a model MuJoCo cannot use (not XML, an ``<include>`` that is
-    missing, no ``ankle_servo``...) is one :class:`ScenarioError` line before any work, not a crash later.
-
-    The scenario loader only looks for ``<mujoco`` near the file's start; compiling is MuJoCo's job.
-    """
+    """Compile and check the scenario's MJCF (cached), so a model MuJoCo cannot use (not XML, an
+    ``<include>`` that is missing, a joint of the channel map it lacks...) is one :class:`ScenarioError` line
+    before any work, not a crash later. :func:`gapgauge.scenario.load_scenario` has done it once already;
+    this catches a model file edited since. A callable controller is loaded and bound here too
+    (:func:`gapgauge.sim.controller.check_controller`), before the store is touched."""
     model_layout(scenario)  # raises ScenarioError for a model MuJoCo cannot use
+    check_controller(scenario)
 
 
 def check_arguments(rollouts: Any, design: str, seed: Any, workers: Any, chunk_size: Any) -> None:
@@ -114,15 +119,17 @@ def run_local(
     return ran
 
 
-def simulate_remote(scenario_path: str, scenario_hash: str, params: np.ndarray, physics: np.ndarray,
+def simulate_remote(scenario_path: str, simulation_hash: str, params: np.ndarray, physics: np.ndarray,
                     indices: np.ndarray, nthread: int) -> RolloutBatch:
-    """The task a Dask worker runs: load the scenario from its path, check it is the same version as
-    the client's (content hash), simulate one chunk. Arrays as in :func:`gapgauge.sim.rollout.simulate`."""
+    """The task a Dask worker runs: load the scenario from its path, check it simulates what the client's
+    does (simulation hash: model files, task, parameters, physics, controller, features), simulate one
+    chunk. Arrays as in :func:`gapgauge.sim.rollout.simulate`."""
     scenario = load_scenario(scenario_path)
-    if scenario.content_hash != scenario_hash:
+    if scenario.simulation_hash != simulation_hash:
         raise ScenarioError(
-            f"{scenario_path}: the Dask worker's copy of the scenario (or its model) differs from the client's "
-            f"(hash {scenario.content_hash} != {scenario_hash}); give the workers the same files"
+            f"{scenario_path}: the Dask worker's copy of the scenario (its model, controller or simulated "
+            f"tables) differs from the client's (simulation hash {scenario.simulation_hash} != {simulation_hash}); "
+            "give the workers the same files"
         )
     return simulate(scenario, params, physics, indices=indices, nthread=nthread)
 
@@ -149,29 +156,35 @@ def run_dask(
     write: Callable[[RolloutBatch], int], advance: Callable[[int], None], workers: int | None,
 ) -> int:
     """Workers simulate chunks; results are written here as they arrive. At most two chunks per
-    worker thread are in flight, so neither side's memory grows with the sweep."""
+    worker thread are in flight, so neither side's memory grows with the sweep; the count follows the
+    workers connected now, since a batch cluster's workers arrive (and leave) while the sweep runs.
+
+    A worker that dies mid-chunk (killed, out of memory, its node lost) loses its chunks in flight; the
+    scheduler runs them again elsewhere and each is written once (rows are unique on run and index)."""
     from distributed import as_completed  # optional extra (cluster); loaded only for a Dask sweep
 
     ran = 0
+    in_flight = 0
     futures = as_completed()
-    threads = sum(client.nthreads().values()) or 1
     queue = iter(chunks)
 
-    def submit(count: int) -> None:
-        for indices in (next(queue, None) for _ in range(count)):
-            if indices is None:
-                return
-            futures.add(client.submit(simulate_remote, str(scenario.path), scenario.content_hash,
+    def top_up() -> None:
+        nonlocal in_flight
+        wanted = 2 * max(1, sum(client.nthreads().values()))
+        while in_flight < wanted and (indices := next(queue, None)) is not None:
+            futures.add(client.submit(simulate_remote, str(scenario.path), scenario.simulation_hash,
                                       *payload(indices), workers or 1, pure=False))
+            in_flight += 1
 
     try:
-        submit(2 * threads)
+        top_up()
         for future in futures:
+            in_flight -= 1
             batch = future.result()
             future.release()
             ran += write(batch)
             advance(len(batch))
-            submit(1)
+            top_up()
     except BaseException:
         for future in list(futures.futures):
             future.cancel()

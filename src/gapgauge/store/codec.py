@@ -9,6 +9,7 @@ arrays) are ``.npz`` written with ``numpy.savez`` and read with ``allow_pickle=F
 
 from __future__ import annotations
 
+import hashlib
 import io
 import json
 import math
@@ -46,6 +47,11 @@ def jsonable(value: Any) -> Any:
 def dumps(value: Any) -> str:
     """Strict JSON (no NaN) of ``value``."""
     return json.dumps(jsonable(value), allow_nan=False, separators=(",", ":"))
+
+
+def digest_text(text: str) -> str:
+    """sha256 hex digest of ``text`` (UTF-8)."""
+    return hashlib.sha256(text.encode("utf-8")).hexdigest()
 
 
 FLOAT = np.dtype("<f8")  # stored byte order, whatever the machine's

@@ -27,6 +27,7 @@ SQLITE_HEADER = b"SQLite format 3\x00"
 BUSY_TIMEOUT_MS = 30_000
 RETRIES = 8  # on "database is locked" after the busy timeout: 0.05 s doubling, about 13 s more in all
 RETRY_FIRST_WAIT_S = 0.05
+READ_CHUNK = 65_536  # rows decoded at a time by a large read (memory stays ~50 MB above the arrays)
 
 
 def utc_now() -> str:
@@ -198,6 +199,19 @@ class Connection:
 
     def _read(self, sql: str, args: Sequence[Any] = ()) -> list[tuple]:
         return self._retry(lambda: self._conn.execute(sql, args).fetchall())
+
+    def _read_chunks(self, sql: str, args: Sequence[Any], decode: Callable[[list[tuple]], T]) -> list[T]:
+        """``decode`` applied to the rows of one query ``READ_CHUNK`` rows at a time (one statement, so one
+        consistent snapshot in WAL mode); at least one chunk, possibly empty."""
+
+        def action() -> list[T]:
+            cursor = self._conn.execute(sql, args)
+            out = []
+            while rows := cursor.fetchmany(READ_CHUNK):
+                out.append(decode(rows))
+            return out or [decode([])]
+
+        return self._retry(action)
 
     # ---- life cycle ---------------------------------------------------------------------------
     def close(self) -> None:

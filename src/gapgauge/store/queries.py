@@ -17,9 +17,20 @@ from ..records import STATUSES, TrialRecord
 from . import schema
 from .codec import npz_to_trajectory
 
+#: the scenario versions that simulate what version ``?`` simulates (same simulation hash; a version-1
+#: row without one matches only itself): their runs are its runs (gapgauge.scenario.identity)
+SAME_SIMULATION = (
+    "SELECT s.hash FROM scenarios s JOIN scenarios me ON me.hash = ?"
+    " WHERE s.hash = me.hash OR s.simulation_hash = me.simulation_hash"
+)
+#: ... and read hardware logs the same way (same [hardware] table): their trials are its trials
+SAME_TRIALS = SAME_SIMULATION + " AND (s.hash = me.hash OR json_extract(s.raw_json, '$.hardware') IS" \
+    " json_extract(me.raw_json, '$.hardware'))"
+
+# one count per run from the (run_id, idx) index: a grouped join sorted every rollout first (0.3 s at 10^6)
 RUNS = (
     "SELECT r.id, r.kind, r.scenario_hash, r.seed, r.design, r.planned, r.nominal, r.config_json, r.status,"
-    " COUNT(ro.idx), r.created_at FROM runs r LEFT JOIN rollouts ro ON ro.run_id = r.id"
+    " (SELECT COUNT(*) FROM rollouts ro WHERE ro.run_id = r.id), r.created_at FROM runs r"
 )
 
 ROLLOUT_COLUMNS = (
@@ -73,19 +84,50 @@ def rollout_select(
     scenario_hash: str, kinds: Sequence[str], run_ids: Iterable[int] | None, status: str | Sequence[str] | None
 ) -> tuple[str, list]:
     """SQL and arguments selecting a scenario's rollouts, ordered by run and index."""
+    sql, args = rollout_filter(scenario_hash, kinds, run_ids, status)
+    return f"SELECT {ROLLOUT_COLUMNS}" + sql + " ORDER BY ro.run_id, ro.idx", args
+
+
+def rollout_state_select(
+    scenario_hash: str, kinds: Sequence[str], run_ids: Iterable[int] | None, status: str | Sequence[str] | None
+) -> tuple[str, list]:
+    """SQL and arguments of what identifies the rows :func:`rollout_select` selects: per run its id,
+    creation time, settings and row count, read from the runs table and the ``(run_id, idx)`` index alone
+    (rollouts are only ever inserted, never updated or deleted, so a run's count changes exactly when a row
+    is added to it). 0.03 s at 10^6 rows, where reading them takes seconds; one count per run, as a grouped
+    join sorted all 10^6 rows first (0.3 s)."""
+    runs, run_args, rows, row_args = _filters(scenario_hash, kinds, run_ids, status)
+    count = "SELECT COUNT(*) FROM rollouts ro WHERE ro.run_id = r.id" + rows
+    return (f"SELECT r.id, r.created_at, r.seed, r.design, r.planned, r.config_json, ({count}) FROM runs r"
+            f" WHERE {runs} ORDER BY r.id", row_args + run_args)
+
+
+def rollout_filter(
+    scenario_hash: str, kinds: Sequence[str], run_ids: Iterable[int] | None, status: str | Sequence[str] | None
+) -> tuple[str, list]:
+    """The ``FROM ... WHERE ...`` part and arguments of :func:`rollout_select`."""
+    runs, run_args, rows, row_args = _filters(scenario_hash, kinds, run_ids, status)
+    return " FROM rollouts ro JOIN runs r ON r.id = ro.run_id WHERE " + runs + rows, run_args + row_args
+
+
+def _filters(
+    scenario_hash: str, kinds: Sequence[str], run_ids: Iterable[int] | None, status: str | Sequence[str] | None
+) -> tuple[str, list, str, list]:
+    """The conditions on runs ``r`` and on their rollouts ``ro`` (`` AND ...``), with their arguments, shared by
+    :func:`rollout_select` and :func:`rollout_state_select` so that the key and its rows never disagree."""
     kinds = [kinds] if isinstance(kinds, str) else list(kinds)
-    sql = (f"SELECT {ROLLOUT_COLUMNS} FROM rollouts ro JOIN runs r ON r.id = ro.run_id"
-           f" WHERE r.scenario_hash = ? AND r.kind IN ({','.join('?' * len(kinds))})")
-    args: list = [scenario_hash, *kinds]
+    runs = f"r.scenario_hash IN ({SAME_SIMULATION}) AND r.kind IN ({','.join('?' * len(kinds))})"
+    run_args: list = [scenario_hash, *kinds]
     if run_ids is not None:
         ids = [int(i) for i in run_ids]
-        sql += f" AND ro.run_id IN ({','.join('?' * len(ids))})"
-        args += ids
+        runs += f" AND r.id IN ({','.join('?' * len(ids))})"
+        run_args += ids
+    rows, row_args = "", []
     if status is not None:
         statuses = [status] if isinstance(status, str) else list(status)
-        sql += f" AND ro.status IN ({','.join('?' * len(statuses))})"
-        args += statuses
-    return sql + " ORDER BY ro.run_id, ro.idx", args
+        rows = f" AND ro.status IN ({','.join('?' * len(statuses))})"
+        row_args = statuses
+    return runs, run_args, rows, row_args
 
 
 def trial_record(row: tuple) -> TrialRecord:
@@ -114,24 +156,46 @@ def info(conn: sqlite3.Connection, path: Path) -> dict:
         for r in conn.execute(RUNS + " GROUP BY r.id ORDER BY r.id").fetchall()
     ]
     scenarios = [
-        {"hash": h, "name": n, "path": p, "created_at": c,
+        {"hash": h, "name": n, "path": p, "created_at": c, "simulation_hash": sim,
          "trials": conn.execute("SELECT COUNT(*) FROM trials WHERE scenario_hash = ?", (h,)).fetchone()[0]}
-        for h, n, p, c in conn.execute("SELECT hash, name, path, created_at FROM scenarios ORDER BY created_at")
+        for h, n, p, c, sim in conn.execute(
+            "SELECT hash, name, path, created_at, simulation_hash FROM scenarios ORDER BY created_at")
     ]
     models = [
         {"id": i, "kind": k, "scenario": names.get(h, h), "scenario_hash": h, "created_at": c}
         for i, k, h, c in conn.execute("SELECT id, kind, scenario_hash, created_at FROM models ORDER BY id")
     ]
+    flagged = _flagged_trials(conn)
     return {
         "store": str(path),
         "schema_version": schema.SCHEMA_VERSION,
         "scenarios": scenarios,
         "runs": runs,
         "rollouts": rollouts,
-        "trials": {"total": int(trial_total), "synthetic": int(synthetic)},
+        "trials": {"total": int(trial_total), "synthetic": int(synthetic),
+                   "flagged": sum(1 for f in flagged if f["flags"]),
+                   "unplaced": sum(1 for f in flagged if not f["placed"]), "checks": flagged},
         "matches": conn.execute("SELECT COUNT(*) FROM matches").fetchone()[0],
         "models": models,
     }
+
+
+def _flagged_trials(conn: sqlite3.Connection) -> list[dict]:
+    """Trials with unusual channels (``extra_json`` flags) or an onset not placed in time: id, file, the
+    flags' lines, whether placed and why not."""
+    out = []
+    for tid, source, extra in conn.execute("SELECT id, source_path, extra_json FROM trials ORDER BY id"):
+        try:
+            data = json.loads(extra) if extra else {}
+        except ValueError:
+            continue
+        flags = [str(f.get("detail", f.get("channel", ""))) for f in data.get("flags") or [] if isinstance(f, dict)]
+        alignment = data.get("alignment") if isinstance(data.get("alignment"), dict) else {}
+        placed = alignment.get("placed") is not False
+        if flags or not placed:
+            out.append({"trial": int(tid), "file": Path(source).name, "flags": flags, "placed": placed,
+                        "reason": "" if placed else str(alignment.get("reason", ""))})
+    return out
 
 
 def check(conn: sqlite3.Connection, path: Path) -> list[str]:

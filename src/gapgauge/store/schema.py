@@ -11,6 +11,13 @@ column names are frozen per scenario version in ``scenarios.columns_json``
 (``{"parameters": [...], "physics": [...], "features": [...]}``), so a later change of defaults can
 never reinterpret stored numbers.
 
+Version 2 keys runs by what they simulate: each scenario version also stores its ``simulation_hash``
+(the sweep's key), its ``trajectory_hash`` (the simulation alone), their parts as ``identity_json`` and its
+objective as ``objective_json`` (:mod:`gapgauge.scenario.identity`). A run belongs to every version with
+its version's simulation hash. Migrating a version-1 store leaves them NULL / empty; they are filled in
+when that scenario version is next added, so old runs are found again as soon as the unchanged
+scenario is used.
+
 Migrations: ``MIGRATIONS[v]`` takes a connection inside an open write transaction from version ``v``
 to ``v + 1``. Opening an older store runs them in order after a backup copy ``<store>.v<old>.bak``
 has been written (see :func:`gapgauge.store.db.Store`); a newer store is refused.
@@ -22,13 +29,23 @@ import sqlite3
 from collections.abc import Callable
 
 #: the schema this code writes and reads
-SCHEMA_VERSION = 1
+SCHEMA_VERSION = 2
 APPLICATION = "gapgauge"
 RUN_KINDS = ("sweep", "match", "standin", "calibration")
 RUN_STATUSES = ("running", "done")
 
+
+
+def _v1_to_v2(conn: sqlite3.Connection) -> None:
+    """Runs keyed by simulation content: the scenario versions' simulation and trajectory hashes."""
+    for column in ("simulation_hash TEXT", "trajectory_hash TEXT", "identity_json TEXT NOT NULL DEFAULT '{}'",
+                   "objective_json TEXT NOT NULL DEFAULT '{}'"):
+        conn.execute(f"ALTER TABLE scenarios ADD COLUMN {column}")
+    conn.execute("CREATE INDEX IF NOT EXISTS scenarios_simulation ON scenarios(simulation_hash)")
+
+
 #: version -> step that migrates a connection from that version to the next (inside one transaction)
-MIGRATIONS: dict[int, Callable[[sqlite3.Connection], None]] = {}
+MIGRATIONS: dict[int, Callable[[sqlite3.Connection], None]] = {1: _v1_to_v2}
 
 TABLES_V1 = """
 CREATE TABLE IF NOT EXISTS meta (
@@ -41,8 +58,13 @@ CREATE TABLE IF NOT EXISTS scenarios (
     path TEXT NOT NULL,
     raw_json TEXT NOT NULL,
     columns_json TEXT NOT NULL,
-    created_at TEXT NOT NULL
+    created_at TEXT NOT NULL,
+    simulation_hash TEXT,
+    trajectory_hash TEXT,
+    identity_json TEXT NOT NULL DEFAULT '{}',
+    objective_json TEXT NOT NULL DEFAULT '{}'
 );
+CREATE INDEX IF NOT EXISTS scenarios_simulation ON scenarios(simulation_hash);
 CREATE TABLE IF NOT EXISTS runs (
     id INTEGER PRIMARY KEY,
     kind TEXT NOT NULL CHECK (kind IN ('sweep', 'match', 'standin', 'calibration')),

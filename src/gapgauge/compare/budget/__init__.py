@@ -12,9 +12,13 @@ each tuned by the proposal policy of :mod:`gapgauge.compare.propose`:
    covariance is ``rho0^2 C_low + k_delta`` with the simulation level's posterior ``C_low``, including
    the basis coefficients' uncertainty, Rasmussen and Williams 2006 eq. 2.42), is factorised by
    Cholesky with the least jitter that works (:func:`gapgauge.compare.linalg.cholesky_jittered`); the
-   marginal sds are set to the models' own ``predict`` sds, so a draw's spread at each point is
-   exactly what ``gapgauge propose`` sees. The objective and the margin
-   are separate GPs with independent posteriors, so a draw is a pair of independent draws.
+   marginal sds are set to the models' own ``predict`` sds. The covariance of the draws is then scaled
+   by the factor the hardware trials give, the cross-validation variance estimate of Bachoc (2013)
+   (each trial predicted by the model without it), shrunk towards 1 by one pseudo-trial
+   (:func:`~.belief.loo_variance_scale`): on the stand-in robots the simulation-led posterior is
+   several times too wide where tuning goes, and surfaces drawn from it unscaled reach levels no robot
+   reaches. The objective and the margin are separate GPs with independent posteriors, so a draw is a
+   pair of independent draws.
 3. Tuning: on every draw, the policy of ``gapgauge propose``, expected improvement times the
    probability of not falling (Jones, Schonlau and Welch 1998; Gardner et al. 2014), with the fall-risk
    limit and the plug-in incumbent (lowest posterior mean at the trials so far), proposes one trial at
@@ -28,10 +32,15 @@ each tuned by the proposal policy of :mod:`gapgauge.compare.propose`:
    ``fit_prior``). When no candidate meets the fall-risk limit (``propose`` would stop and say so),
    the simulated user lifts the limit for that trial (EI x P(no fall) unconstrained, as with a higher
    ``max_fall_risk``); such trials are counted in ``infeasible_steps`` and reported in the notes.
-4. Target, per draw: ``median - fraction (median - best)`` over the candidates on which the draw
-   stands (fall chance below one half), the median standing for "a random safe parameter set" and the
-   best for the best achievable; or an absolute ``target_value``. Reached at the first trial that
-   stands with the draw's (latent) objective at or below the target.
+4. Target (:mod:`.target`): a trial that does not fall, meets the scenario's ``[success]`` rule and
+   scores the objective at or below a level. The level is given (``target_value``), or given as a
+   distance above the best the posterior expects for this robot (``target_within``; the lowest
+   posterior mean within the fall-risk limit), or, by default, chosen: the most ambitious level that
+   ``reach_share`` (90%) of the simulated runs with the prior reach within ``max_trials``, never above
+   the level at which the sweep shows the success rule to hold. The older per-draw target,
+   ``median - fraction (median - best)`` over the candidates on which the draw stands, stays available
+   (``target_fraction``). The policy never looks at the target: reached at the first trial that stands
+   with the draw's (latent) objective at or below it.
 5. Cold start: the same policy on the same draws with a hardware-only model instead of the prior,
    :func:`gapgauge.compare.prior.hardware_only_gp` (Matern 5/2 ARD, constant mean ~ N(0, 1), weak
    priors) for the objective and the same form for the margin (fall risk: the Gaussian tail below
@@ -43,18 +52,20 @@ each tuned by the proposal policy of :mod:`gapgauge.compare.propose`:
 Both arms count trials from now on: the trials already in the store are known to both. The figures:
 the probability of having reached the target by trial ``n`` (the curve), and the budget at level
 ``q``, the least ``n`` with that probability at least ``q`` (None, printed ">T", when the target is
-reached in fewer than a fraction ``q`` of the draws within ``max_trials``), and the expected falls
-before the target is reached. The draws come from the prior's own posterior, so the with-prior arm
-tunes a surface its model describes correctly: ``benchmarks/budget_coverage.py`` checks the P80 against
-tuning runs on the stand-in robot.
+reached in fewer than a fraction ``q`` of the draws within ``max_trials``, and then the arm says what
+would give a number), and the expected falls before the target is reached. Whether the figures hold
+is measured, not assumed: ``benchmarks/budget_coverage.py`` compares P50 and P80 with real tuning runs
+(``propose`` and refits) on stand-in robots, shipped and drawn at random.
 
 The package, along its seams:
 
 - :mod:`.belief`: Gaussian beliefs on the candidate set, built from the fitted models' own
   ``predict(..., return_cov=True)``; conditioning; the surface draws.
 - :mod:`.policy`: the simulated tuning runs (:func:`run_policy`).
-- :mod:`.plan`: targets, reach curves, the two arms, :func:`plan_from_prior` (the pure entry point:
-  a fitted prior in, a :class:`BudgetPlan` out).
+- :mod:`.target`: what "reached" means, chosen or given, in words.
+- :mod:`.figures`: reach curves, the budgets of one arm, what would give a number.
+- :mod:`.plan`: the two arms, :func:`plan_from_prior` (the pure entry point: a fitted prior in, a
+  :class:`BudgetPlan` out).
 - :mod:`.result`: :class:`BudgetPlan` (stored as kind ``"budget"``).
 
 The job that reads the prior from a store and saves the plan is :func:`gapgauge.app.budget.plan_budget`.
@@ -70,8 +81,11 @@ from .belief import (
     condition,
     draw_surfaces,
     hardware_only_belief,
+    loo_variance_scale,
     multifidelity_belief,
+    scaled,
 )
+from .figures import arm_figures, budget_at, reach_curve
 from .plan import (
     DEFAULT_CANDIDATES,
     DEFAULT_CONFIDENCE,
@@ -79,17 +93,23 @@ from .plan import (
     DEFAULT_MAX_TRIALS,
     DEFAULT_TARGET_FRACTION,
     METHOD,
-    budget_at,
     budget_from_beliefs,
     candidate_set,
     check_options,
-    draw_targets,
     plan_from_prior,
-    reach_curve,
-    summarise,
 )
-from .policy import DEFAULT_MAX_FALL_RISK, DRAW_CHUNK, POLICIES, PolicyRuns, run_policy
+from .policy import (
+    DEFAULT_MAX_FALL_RISK,
+    DRAW_CHUNK,
+    POLICIES,
+    PolicyRuns,
+    fall_risk,
+    falls_before,
+    run_policy,
+    trials_to_level,
+)
 from .result import ArmBudget, BudgetPlan, BudgetTarget, CurvePoint, book_text
+from .target import DEFAULT_REACH_SHARE, auto_level, draw_targets, reference_best, standing, success_cap
 
 __all__ = [
     "COLD_CONSTANT_VARIANCE",
@@ -99,6 +119,7 @@ __all__ = [
     "DEFAULT_DRAWS",
     "DEFAULT_MAX_FALL_RISK",
     "DEFAULT_MAX_TRIALS",
+    "DEFAULT_REACH_SHARE",
     "DEFAULT_TARGET_FRACTION",
     "DRAW_CHUNK",
     "METHOD",
@@ -111,6 +132,8 @@ __all__ = [
     "Conditioner",
     "CurvePoint",
     "PolicyRuns",
+    "arm_figures",
+    "auto_level",
     "beliefs_from_prior",
     "book_text",
     "budget_at",
@@ -120,10 +143,17 @@ __all__ = [
     "condition",
     "draw_surfaces",
     "draw_targets",
+    "fall_risk",
+    "falls_before",
     "hardware_only_belief",
+    "loo_variance_scale",
     "multifidelity_belief",
     "plan_from_prior",
     "reach_curve",
+    "reference_best",
     "run_policy",
-    "summarise",
+    "scaled",
+    "standing",
+    "success_cap",
+    "trials_to_level",
 ]

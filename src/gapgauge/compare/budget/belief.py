@@ -6,6 +6,13 @@ own ``predict(X, return_std=True, return_cov=True)``: the multi-fidelity prior's
 (:func:`multifidelity_belief`) or the hardware-only GP of a cold start (:func:`hardware_only_belief`).
 :class:`Conditioner` then updates it under many streams of simulated observations at once, and
 :func:`draw_surfaces` draws plausible hardware surfaces from it.
+
+The surfaces are drawn from the prior's posterior with its covariance scaled by a factor checked on
+the hardware trials themselves (:func:`loo_variance_scale`): the cross-validation estimate of a GP's
+variance (Bachoc 2013), each trial predicted by the model refitted without it, shrunk towards 1. On
+the stand-in robots the simulation-led posterior is several times too wide where tuning goes (its
+mean is close, its sd is not); drawn from unscaled, the surfaces reach levels no robot reaches. The
+tuner of the simulated runs keeps the unscaled model, as ``gapgauge propose`` does.
 """
 
 from __future__ import annotations
@@ -26,6 +33,11 @@ COLD_NOISE_VARIANCE = 0.09
 COLD_CONSTANT_VARIANCE = 1.0
 # a cold start fits its GP (maximum a posteriori) from this many known trials on
 COLD_FIT_MIN_TRIALS = 3
+# the variance scale's prior weight, in trials: the model's own scale (1) counts as this many
+# leave-one-out residuals (a scaled inverse chi-square prior with this many degrees of freedom)
+SCALE_PRIOR_TRIALS = 1.0
+# leave-one-out needs at least this many hardware trials
+SCALE_MIN_TRIALS = 2
 
 
 @dataclass
@@ -70,6 +82,9 @@ class Beliefs:
         margin_noise_sd: sd of one hardware observation of the margin, m.
         covariance_check: largest relative difference between a belief's covariance diagonal and its
             model's predictive sd before rescaling (0 up to rounding).
+        objective_scale, margin_scale: the variance scales of the surfaces' draws
+            (:func:`loo_variance_scale`; 1: unscaled); the beliefs themselves are not scaled.
+        objective_residuals, margin_residuals: the standardised leave-one-out residuals they rest on.
     """
 
     objective: Belief
@@ -79,6 +94,18 @@ class Beliefs:
     cold_margin: Belief | None = None
     margin_noise_sd: float = 0.0
     covariance_check: float = 0.0
+    objective_scale: float = 1.0
+    margin_scale: float = 1.0
+    objective_residuals: np.ndarray | None = None
+    margin_residuals: np.ndarray | None = None
+
+    def surfaces(self, draws: int, rng: np.random.Generator) -> tuple[np.ndarray, np.ndarray | None]:
+        """``(draws x m)`` plausible hardware objectives and margins (None without a fall model) at the
+        candidates: :func:`draw_surfaces` of the prior's beliefs with their variance scales."""
+        objective = draw_surfaces(scaled(self.objective, self.objective_scale), draws, rng)
+        if self.margin is None:
+            return objective, None
+        return objective, draw_surfaces(scaled(self.margin, self.margin_scale), draws, rng)
 
 
 def condition(belief: Belief, index: np.ndarray, y: np.ndarray) -> Belief:
@@ -138,6 +165,39 @@ class Conditioner:
         self.var = np.maximum(self.var - v**2, 0.0)
         self.V[:, self.n] = v
         self.n += 1
+
+
+def scaled(belief: Belief, factor: float) -> Belief:
+    """``belief`` with its covariance multiplied by ``factor`` (the mean and everything else kept)."""
+    if factor == 1.0:
+        return belief
+    return Belief(belief.mean, factor * belief.cov, belief.noise_var, belief.n_known, belief.floor, belief.link)
+
+
+def loo_variance_scale(model: MultiFidelityGP, prior_trials: float = SCALE_PRIOR_TRIALS) -> tuple[float, np.ndarray]:
+    """The factor by which the hardware trials say the model's predictive variance should be scaled,
+    and the standardised leave-one-out residuals ``z (k,)`` it rests on.
+
+    ``z_i = (y_i - mu_{-i}) / s_{-i}``: trial ``i`` predicted (latent variance plus the hardware noise)
+    by the model with the same simulation level and hyperparameters, its hardware level conditioned on
+    the other trials (``copy_with_high(..., optimize=False)``). Bachoc (2013), Computational Statistics
+    and Data Analysis 66:55-69, shows the cross-validation estimate of the variance, ``mean(z^2)`` times
+    the model's, to be the robust one when the covariance is misspecified. With ``k`` trials it is
+    shrunk towards 1 by ``prior_trials`` pseudo-trials: ``(prior_trials + sum z^2) / (prior_trials + k)``
+    (the posterior mean scale under a scaled inverse chi-square prior centred on 1). Fewer than 2
+    trials: 1, and no residuals.
+    """
+    X, y = model.X_high_, model.y_high_
+    k = y.size
+    if k < SCALE_MIN_TRIALS:
+        return 1.0, np.zeros(0)
+    z = np.empty(k)
+    for i in range(k):
+        keep = np.arange(k) != i
+        mu, sd = model.copy_with_high(X[keep], y[keep], optimize=False).predict(X[i: i + 1], return_std=True,
+                                                                                observation=True)
+        z[i] = (y[i] - mu[0]) / max(float(sd[0]), 1e-12)
+    return float((prior_trials + np.sum(z**2)) / (prior_trials + k)), z
 
 
 def draw_surfaces(belief: Belief, draws: int, rng: np.random.Generator) -> np.ndarray:
@@ -215,12 +275,13 @@ def _scale_hint(belief: Belief) -> tuple[float, float]:
     return float(np.mean(belief.mean)), spread
 
 
-def beliefs_from_prior(prior: PriorFit, candidates: np.ndarray, seed: int = 0) -> Beliefs:
+def beliefs_from_prior(prior: PriorFit, candidates: np.ndarray, seed: int = 0, calibrate: bool = True) -> Beliefs:
     """The beliefs of a fitted prior and of a cold start at ``candidates (m x dim)`` (unit cube).
 
     Each belief's points are the response's hardware trials (``X_high_``, known) followed by the
     candidates. The cold start sees the same trials; its scale hint is the prior's overall level and
-    spread when it has too few trials to set its own.
+    spread when it has too few trials to set its own. With ``calibrate``, the variance scales of the
+    draws come from the trials (:func:`loo_variance_scale`, objective and margin alike); else 1.
 
     Raises:
         ModelError: the prior carries no fitted models.
@@ -235,6 +296,8 @@ def beliefs_from_prior(prior: PriorFit, candidates: np.ndarray, seed: int = 0) -
     objective, check_o = multifidelity_belief(obj, X_o, n_known=obj.X_high_.shape[0])
     cold_objective = hardware_only_belief(X_o, obj.X_high_.shape[0], obj.y_high_, _scale_hint(objective), seed)
     beliefs = Beliefs(objective, cold_objective, float(obj.hardware_noise_sd_), covariance_check=check_o)
+    if calibrate:
+        beliefs.objective_scale, beliefs.objective_residuals = loo_variance_scale(obj)
     fall = prior.fall_model
     if fall is None:
         return beliefs
@@ -250,4 +313,6 @@ def beliefs_from_prior(prior: PriorFit, candidates: np.ndarray, seed: int = 0) -
     )
     beliefs.margin_noise_sd = float(fm.hardware_noise_sd_)
     beliefs.covariance_check = max(check_o, check_m)
+    if calibrate:
+        beliefs.margin_scale, beliefs.margin_residuals = loo_variance_scale(fm)
     return beliefs

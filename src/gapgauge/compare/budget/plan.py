@@ -1,8 +1,9 @@
 """The budget's entry point: draws, targets, both arms, and the figures of the plan.
 
 :func:`plan_from_prior` (a fitted prior in, a :class:`BudgetPlan` out) makes the candidate set, the
-beliefs (:mod:`.belief`), the surfaces and their targets, runs the policy (:mod:`.policy`) with the
-prior and from a cold start, and summarises the two arms; :func:`budget_from_beliefs` is its array core.
+beliefs (:mod:`.belief`), the surfaces, runs the policy (:mod:`.policy`) with the prior and from a cold
+start, sets the target (:mod:`.target`) and summarises the two arms (:mod:`.figures`);
+:func:`budget_from_beliefs` is its array core.
 """
 
 from __future__ import annotations
@@ -18,14 +19,26 @@ from ...progress import Progress
 from ...scenario import Scenario
 from ..linalg import FIT_BLAS_THREADS
 from ..prior import PriorFit
-from .belief import Beliefs, beliefs_from_prior, draw_surfaces
-from .policy import DEFAULT_MAX_FALL_RISK, STAGE, PolicyRuns, run_policy
-from .result import ArmBudget, BudgetPlan, BudgetTarget, CurvePoint, book_text
+from .belief import Beliefs, beliefs_from_prior
+from .figures import arm_figures
+from .policy import DEFAULT_MAX_FALL_RISK, STAGE, run_policy
+from .result import BudgetPlan, BudgetTarget, CurvePoint, book_text
+from .target import (
+    DEFAULT_REACH_SHARE,
+    auto_level,
+    draw_targets,
+    readable_step,
+    reference_best,
+    statement,
+    success_cap,
+    success_rule_text,
+    success_share_at,
+)
 
 DEFAULT_DRAWS = 128
 DEFAULT_MAX_TRIALS = 20
 DEFAULT_CANDIDATES = 1024
-DEFAULT_TARGET_FRACTION = 0.95
+DEFAULT_TARGET_FRACTION = 0.95  # the per-draw fraction target, when asked for
 DEFAULT_CONFIDENCE = 0.8
 # a belief covariance whose diagonal differs from its model's predictive sd by more than this
 # (relative) is rescaled with a note; below it the difference is rounding
@@ -35,17 +48,20 @@ INFEASIBLE_NOTE_SHARE = 0.05
 
 METHOD = {
     "draws": "joint posterior draws on the candidate set: Cholesky of the full posterior covariance "
-    "(least jitter), marginal sds equal to the models' predict",
+    "(least jitter), marginal sds equal to the models' predict, the covariance scaled by the hardware "
+    "trials' leave-one-out residuals (Bachoc 2013), shrunk towards 1",
     "candidates": "scrambled Sobol points inside the safe bounds (scipy.stats.qmc)",
     "policy": "expected improvement x P(no fall) under the fall-risk limit, plug-in incumbent, maximised "
     "over the candidate set (discrete)",
     "update": "exact Gaussian conditioning on each trial, hyperparameters fixed (no refit)",
     "cold_start": "hardware-only GP (Matern 5/2 ARD, constant mean, weak priors) for objective and margin",
+    "target": "no fall, the success rule and an objective level; by default the most ambitious level that "
+    "90% of the simulated runs with the prior reach within max_trials",
     "budget": "least n with P(reached by n) >= level; None means > max_trials",
 }
 
 
-# ---- candidates, targets, curves ---------------------------------------------------------------
+# ---- candidates ---------------------------------------------------------------------------------
 
 
 def candidate_set(scenario: Scenario, n_candidates: int, seed: int | np.random.Generator) -> np.ndarray:
@@ -57,84 +73,20 @@ def candidate_set(scenario: Scenario, n_candidates: int, seed: int | np.random.G
     return bounds[:, 0] + U * (bounds[:, 1] - bounds[:, 0])
 
 
-def draw_targets(
-    objective: np.ndarray,
-    margin: np.ndarray | None,
-    fraction: float | None,
-    value: float | None,
-    fall_link: tuple[float, float, float] | None = None,
-) -> np.ndarray:
-    """Per-draw target ``(draws,)``: ``value`` if given, else ``median - fraction (median - best)`` over
-    the candidates on which the draw stands (``margin >= 0``, or with ``fall_link = (a, b, threshold)``
-    a fall chance below one half, ``a + b (threshold - margin) < 0``); NaN where nothing stands.
-
-    ``objective``, ``margin``: ``(draws x m)``; lower objective is better. The median stands for "a
-    random safe parameter set", the best for the best achievable.
-    """
-    objective = np.atleast_2d(objective)
-    if value is not None:
-        return np.full(objective.shape[0], float(value))
-    if margin is None:
-        stands = np.ones_like(objective, dtype=bool)
-    elif fall_link is None:
-        stands = np.atleast_2d(margin) >= 0.0
-    else:
-        a, b, threshold = fall_link
-        stands = a + b * (threshold - np.atleast_2d(margin)) < 0.0
-    masked = np.where(stands, objective, np.nan)
-    out = np.full(objective.shape[0], np.nan)
-    some = stands.any(axis=1)
-    median = np.nanmedian(masked[some], axis=1)
-    best = np.nanmin(masked[some], axis=1)
-    out[some] = median - fraction * (median - best)
-    return out
-
-
-def reach_curve(trials_to_target: np.ndarray, max_trials: int) -> np.ndarray:
-    """``(max_trials,)``: the fraction of draws that reached the target by trial ``n = 1..max_trials``."""
-    t = np.asarray(trials_to_target)
-    return np.array([float(np.mean(t <= n)) for n in range(1, max_trials + 1)])
-
-
-def budget_at(curve: np.ndarray, level: float) -> int | None:
-    """The least ``n`` whose reach probability is at least ``level``, or None when no ``n`` in the
-    curve gets there (the target is reached in fewer than ``level`` of the draws: "> T")."""
-    hit = np.flatnonzero(np.asarray(curve) >= level - 1e-12)
-    return int(hit[0]) + 1 if hit.size else None
-
-
-def summarise(runs: PolicyRuns, max_trials: int, confidence: float) -> ArmBudget:
-    """The figures of one arm: P50, P80, P95 and the level ``confidence``, the fraction reached,
-    expected falls (before the target, within ``max_trials``), and the per-draw trials (None: > T)."""
-    curve = reach_curve(runs.trials_to_target, max_trials)
-    t = runs.trials_to_target
-    reached = t <= max_trials
-    return ArmBudget(
-        p50=budget_at(curve, 0.5),
-        p80=budget_at(curve, 0.8),
-        p95=budget_at(curve, 0.95),
-        book=budget_at(curve, confidence),
-        reached_fraction=float(curve[-1]),
-        expected_falls=float(np.mean(runs.falls)),
-        mean_trials_when_reached=float(np.mean(t[reached])) if np.any(reached) else None,
-        infeasible_steps=int(runs.infeasible_steps),
-        trials_to_target=[int(v) if v <= max_trials else None for v in t],
-        curve=curve.tolist(),
-    )
-
-
 # ---- the plan ----------------------------------------------------------------------------------
 
 
 def check_options(
     *,
-    target_fraction: float,
-    target_value: float | None,
-    confidence: float,
-    max_trials: int,
-    draws: int,
-    max_fall_risk: float,
-    seed: int,
+    target_fraction: float | None = None,
+    target_value: float | None = None,
+    target_within: float | None = None,
+    reach_share: float = DEFAULT_REACH_SHARE,
+    confidence: float = DEFAULT_CONFIDENCE,
+    max_trials: int = DEFAULT_MAX_TRIALS,
+    draws: int = DEFAULT_DRAWS,
+    max_fall_risk: float = DEFAULT_MAX_FALL_RISK,
+    seed: int = 0,
     n_candidates: int = DEFAULT_CANDIDATES,
 ) -> None:
     """Refuse arguments out of range, naming the argument.
@@ -142,10 +94,18 @@ def check_options(
     Raises:
         ModelError: the first argument out of range, with its allowed range.
     """
-    if target_value is None and not 0.0 < target_fraction <= 1.0:
+    given = [name for name, v in (("target_fraction", target_fraction), ("target_value", target_value),
+                                  ("target_within", target_within)) if v is not None]
+    if len(given) > 1:
+        raise ModelError(f"give at most one of target_fraction, target_value and target_within, got {given}")
+    if target_fraction is not None and not 0.0 < target_fraction <= 1.0:
         raise ModelError(f"target_fraction must be in (0, 1], got {target_fraction}")
     if target_value is not None and not np.isfinite(target_value):
         raise ModelError(f"target_value must be a finite number, got {target_value}")
+    if target_within is not None and not (np.isfinite(target_within) and target_within >= 0):
+        raise ModelError(f"target_within must be a non-negative number (objective units), got {target_within}")
+    if not 0.0 < reach_share < 1.0:
+        raise ModelError(f"reach_share must be in (0, 1), got {reach_share}")
     if not 0.0 < confidence < 1.0:
         raise ModelError(f"confidence must be in (0, 1), got {confidence}")
     if not 1 <= max_trials <= 500:
@@ -160,11 +120,73 @@ def check_options(
         raise ModelError(f"seed must be a non-negative integer, got {seed!r}")
 
 
+def _target(
+    kind: str,
+    beliefs: Beliefs,
+    objective: np.ndarray,
+    margin: np.ndarray | None,
+    best_at_horizon: np.ndarray,
+    *,
+    target_fraction: float | None,
+    target_value: float | None,
+    target_within: float | None,
+    reach_share: float,
+    max_fall_risk: float,
+    max_trials: int,
+    success_rule: str,
+    success: tuple[np.ndarray, np.ndarray] | None,
+) -> tuple[np.ndarray, BudgetTarget, float, list[str]]:
+    """The per-draw target ``(draws,)``, its statement, the readable step of its level, and notes."""
+    notes: list[str] = []
+    reference, any_feasible = reference_best(beliefs, max_fall_risk)
+    if not any_feasible:
+        notes.append(f"no candidate is within the fall-risk limit {max_fall_risk:g}: the best the posterior "
+                     "expects is taken over all candidates")
+    o = beliefs.objective
+    spread = float(np.median(o.mean[o.n_known:])) - reference
+    step = readable_step(spread)
+    fall_link = None if beliefs.margin is None else beliefs.margin.link
+    if kind == "fraction":
+        target = draw_targets(objective, margin, target_fraction, None, fall_link)
+        median = float(np.nanmedian(target)) if np.any(np.isfinite(target)) else None
+        definition, sentence, why = statement(kind=kind, level=None, reference=reference, step=step,
+                                              rule=success_rule, fraction=target_fraction, median=median)
+        return target, BudgetTarget(kind, None, None, reference, float(target_fraction), None, success_rule, None,
+                                    definition, sentence, why, median), step, notes
+    cap = None if success is None or not success_rule else success_cap(*success)
+    capped = False
+    if kind == "value":
+        level = float(target_value)
+    elif kind == "within":
+        level = reference + float(target_within)
+    else:
+        level = auto_level(best_at_horizon, reach_share, step)
+        if level is None:
+            level = reference
+            notes.append(f"fewer than {100 * reach_share:.0f}% of the simulated runs with the prior had a trial "
+                         "that stood: the target falls back on the best the posterior expects")
+        if cap is not None and level > cap:
+            level, capped = cap, True
+    share = None if success is None or not success_rule else success_share_at(*success, level)
+    definition, sentence, why = statement(
+        kind=kind, level=level, reference=reference, step=step, rule=success_rule,
+        reach_share=reach_share, cap=cap, capped=capped, success_share=share, draws=objective.shape[0],
+        max_trials=max_trials,
+    )
+    reached = float(np.mean(best_at_horizon <= level))
+    info = BudgetTarget(kind, float(level), float(level - reference), reference, None,
+                        reached if kind == "auto" else None, success_rule, share, definition, sentence, why,
+                        float(level))
+    return np.full(objective.shape[0], float(level)), info, step, notes
+
+
 def budget_from_beliefs(
     beliefs: Beliefs,
     *,
-    target_fraction: float = DEFAULT_TARGET_FRACTION,
+    target_fraction: float | None = None,
     target_value: float | None = None,
+    target_within: float | None = None,
+    reach_share: float = DEFAULT_REACH_SHARE,
     confidence: float = DEFAULT_CONFIDENCE,
     max_trials: int = DEFAULT_MAX_TRIALS,
     draws: int = DEFAULT_DRAWS,
@@ -172,32 +194,45 @@ def budget_from_beliefs(
     max_fall_risk: float = DEFAULT_MAX_FALL_RISK,
     scenario: str = "",
     n_hardware: int = 0,
+    success_rule: str = "",
+    success: tuple[np.ndarray, np.ndarray] | None = None,
     notes: list[str] | None = None,
     progress: Progress | None = None,
 ) -> BudgetPlan:
     """The budget from beliefs on a candidate set (the array core of :func:`plan_from_prior`).
 
-    The surfaces are drawn from ``beliefs.objective`` and ``beliefs.margin`` (their candidates' part);
-    the with-prior arm tunes them with those beliefs, the cold start with ``beliefs.cold_objective``
-    and ``beliefs.cold_margin``. ``seed`` seeds the draws and both arms' observation noise;
-    ``progress(stage, done, total)`` is called after each simulated trial of each arm.
+    The surfaces are drawn from ``beliefs.objective`` and ``beliefs.margin`` (their candidates' part,
+    with their variance scales, :meth:`Beliefs.surfaces`); the with-prior arm tunes them with those
+    beliefs (unscaled, as ``propose`` does), the cold start with ``beliefs.cold_objective`` and
+    ``beliefs.cold_margin``. The target (:mod:`.target`): ``target_value``, ``target_within`` (above the
+    best the posterior expects), ``target_fraction`` (per draw), or none of them: the most ambitious
+    level that ``reach_share`` of the runs with the prior reach within ``max_trials``. ``success_rule``:
+    the scenario's rule in words; ``success``: ``(objective (n,), met (n,) bool)`` of the simulated
+    rollouts that stood, the sweep's evidence of the level at which the rule holds. ``seed`` seeds the
+    draws and both arms' observation noise; ``progress(stage, done, total)`` is called after each
+    simulated trial of each arm.
     """
     rng = np.random.default_rng(seed)
     draw_rng, prior_rng, cold_rng = (np.random.default_rng(s) for s in rng.bit_generator.seed_seq.spawn(3))
-    objective = draw_surfaces(beliefs.objective, draws, draw_rng)
-    margin = None if beliefs.margin is None else draw_surfaces(beliefs.margin, draws, draw_rng)
+    objective, margin = beliefs.surfaces(draws, draw_rng)
     fall_link = None if beliefs.margin is None else beliefs.margin.link
-    target = draw_targets(objective, margin, target_fraction, target_value, fall_link)
     common = dict(
         max_trials=max_trials, objective_noise_sd=beliefs.objective_noise_sd,
         margin_noise_sd=beliefs.margin_noise_sd, max_fall_risk=max_fall_risk, fall_link=fall_link,
         progress=progress,
     )
-    prior_runs = run_policy(objective, margin, target, beliefs.objective, beliefs.margin, rng=prior_rng,
+    prior_runs = run_policy(objective, margin, None, beliefs.objective, beliefs.margin, rng=prior_rng,
                             stage=f"{STAGE}, with the prior", **common)
-    cold_runs = run_policy(objective, margin, target, beliefs.cold_objective, beliefs.cold_margin, rng=cold_rng,
+    cold_runs = run_policy(objective, margin, None, beliefs.cold_objective, beliefs.cold_margin, rng=cold_rng,
                            stage=f"{STAGE}, cold start", **common)
-    notes = list(notes or [])
+    kind = ("fraction" if target_fraction is not None else "value" if target_value is not None
+            else "within" if target_within is not None else "auto")
+    target, target_info, step, target_notes = _target(
+        kind, beliefs, objective, margin, prior_runs.best_so_far[:, -1], target_fraction=target_fraction,
+        target_value=target_value, target_within=target_within, reach_share=reach_share,
+        max_fall_risk=max_fall_risk, max_trials=max_trials, success_rule=success_rule, success=success,
+    )
+    notes = list(notes or []) + target_notes
     unreachable = int(np.sum(~np.isfinite(target)))
     if unreachable:
         notes.append(f"{unreachable} of {draws} draws fall on every candidate: counted as never reached")
@@ -208,21 +243,10 @@ def budget_from_beliefs(
                 f"{name}: in {100 * share:.0f}% of simulated trials no candidate met the fall-risk limit "
                 f"{max_fall_risk:g} (gapgauge propose would stop and say so); there the limit was lifted"
             )
-    target_info = BudgetTarget(
-        kind="value" if target_value is not None else "fraction",
-        fraction=None if target_value is not None else float(target_fraction),
-        value=None if target_value is None else float(target_value),
-        definition=(
-            f"objective <= {target_value:g}" if target_value is not None else
-            f"{target_fraction:g} of the way from the median of random safe parameter sets to the best, per draw"
-        ),
-        median_over_draws=float(np.nanmedian(target)) if np.any(np.isfinite(target)) else None,
-    )
-    with_prior = summarise(prior_runs, max_trials, confidence)
-    cold = summarise(cold_runs, max_trials, confidence)
+    with_prior = arm_figures(prior_runs, target, max_trials, confidence, step)
+    cold = arm_figures(cold_runs, target, max_trials, confidence, step)
     curve = [CurvePoint(n + 1, with_prior.curve[n], cold.curve[n]) for n in range(max_trials)]
     p, c = with_prior.p80, cold.p80
-    level = f"P{round(100 * confidence)}"
     return BudgetPlan(
         scenario=scenario,
         with_prior=with_prior,
@@ -230,10 +254,7 @@ def budget_from_beliefs(
         curve=curve,
         saving=c - p if p is not None and c is not None else None,
         saving_at_least=max_trials + 1 - p if p is not None and c is None else None,
-        sentence=(
-            f"Book {book_text(with_prior.book, max_trials)} trials ({level} with the simulation prior), "
-            f"{book_text(cold.book, max_trials)} without it."
-        ),
+        sentence=_sentence(with_prior.book, cold.book, confidence, max_trials),
         target=target_info,
         confidence=float(confidence),
         max_trials=int(max_trials),
@@ -242,35 +263,56 @@ def budget_from_beliefs(
         max_fall_risk=float(max_fall_risk),
         n_candidates=int(beliefs.objective.n_candidates),
         n_hardware=int(n_hardware),
+        objective_scale=float(beliefs.objective_scale),
+        margin_scale=float(beliefs.margin_scale),
         method=dict(METHOD),
         notes=notes,
     )
+
+
+def _sentence(book: int | None, cold: int | None, confidence: float, max_trials: int) -> str:
+    level = f"P{round(100 * confidence)}"
+    text = (f"Book {book_text(book, max_trials)} trials ({level}) with the simulation prior to reach the target, "
+            f"{book_text(cold, max_trials)} without it")
+    if book is not None and cold is not None and cold > book:
+        text += f": the prior saves {cold - book}"
+    elif book is not None and cold is None:
+        text += f": the prior saves at least {max_trials + 1 - book}"
+    return text + "."
 
 
 def plan_from_prior(
     prior: PriorFit,
     *,
     candidates: np.ndarray | None = None,
-    target_fraction: float = DEFAULT_TARGET_FRACTION,
+    target_fraction: float | None = None,
     target_value: float | None = None,
+    target_within: float | None = None,
+    reach_share: float = DEFAULT_REACH_SHARE,
     confidence: float = DEFAULT_CONFIDENCE,
     max_trials: int = DEFAULT_MAX_TRIALS,
     draws: int = DEFAULT_DRAWS,
     seed: int = 0,
     max_fall_risk: float = DEFAULT_MAX_FALL_RISK,
     n_candidates: int = DEFAULT_CANDIDATES,
+    success: tuple[np.ndarray, np.ndarray] | None = None,
+    calibrate: bool = True,
     progress: Progress | None = None,
 ) -> BudgetPlan:
     """How many hardware trials to book to reach the target, with the simulation prior and without.
 
     Args:
         prior: the fitted prior (:func:`gapgauge.compare.prior.fit_prior`); its scenario's safe bounds
-            confine the candidates and its hardware trials are known to both arms.
+            confine the candidates, its ``[success]`` rule is part of the target, and its hardware
+            trials are known to both arms.
         candidates: ``(m x dim)`` candidate points (unit cube of the full bounds, inside the safe
             bounds); None: ``n_candidates`` scrambled Sobol points (:func:`candidate_set`).
-        target_fraction: target ``fraction`` of the way from a random safe set's objective (median) to
-            the best, in (0, 1]; ignored when ``target_value`` is given.
-        target_value: an absolute objective to reach instead (objective units, lower is better).
+        target_fraction: the per-draw target, this fraction of the way from a random safe set's objective
+            (median) to the draw's best, in (0, 1].
+        target_value: an absolute objective level to reach (objective units, lower is better).
+        target_within: a level this far above the best the posterior expects (objective units, >= 0).
+        reach_share: with none of the three, the level is the most ambitious one that this share of the
+            simulated runs with the prior reach within ``max_trials``, in (0, 1).
         confidence: the level of the booked figure (``book`` and the sentence), in (0, 1).
         max_trials: trials per simulated tuning run (T), 1 to 500.
         draws: plausible hardware surfaces (S), 1 to 100000.
@@ -280,14 +322,18 @@ def plan_from_prior(
         max_fall_risk: the fall-risk limit of the policy (as ``gapgauge propose``), in (0, 1].
         n_candidates: candidate points when ``candidates`` is None, 2 to 8192 (rounded up to a power
             of two).
+        success: ``(objective (n,), met (n,) bool)`` of the sweep's rollouts that stood: whether each met
+            the success rule (:func:`gapgauge.features.success`); the evidence of the levels at which the
+            rule holds (None: not used).
+        calibrate: scale the surfaces' variance by the trials' leave-one-out residuals (the default).
         progress: called as ``progress(stage, done, total)`` as the simulated trials go.
 
     Raises:
         ModelError: an argument out of range (named), or a prior without its fitted models.
     """
-    check_options(target_fraction=target_fraction, target_value=target_value, confidence=confidence,
-                  max_trials=max_trials, draws=draws, max_fall_risk=max_fall_risk, seed=seed,
-                  n_candidates=n_candidates)
+    check_options(target_fraction=target_fraction, target_value=target_value, target_within=target_within,
+                  reach_share=reach_share, confidence=confidence, max_trials=max_trials, draws=draws,
+                  max_fall_risk=max_fall_risk, seed=seed, n_candidates=n_candidates)
     started = time.perf_counter()
     scenario = prior.scenario
     if scenario is None or prior.objective_model is None:
@@ -306,17 +352,26 @@ def plan_from_prior(
         )
     inner_seed = int(monte_carlo_seed.generate_state(1)[0])
     with threadpool_limits(limits=FIT_BLAS_THREADS, user_api="blas"):
-        beliefs = beliefs_from_prior(prior, candidates, inner_seed)
+        beliefs = beliefs_from_prior(prior, candidates, inner_seed, calibrate=calibrate)
     notes = list(prior.notes)
     if beliefs.covariance_check > COVARIANCE_CHECK_TOLERANCE:
         notes.append(
             f"posterior covariance rescaled to the models' sds (largest relative difference "
             f"{beliefs.covariance_check:.2g})"
         )
+    if calibrate and beliefs.objective_residuals is not None and beliefs.objective_residuals.size:
+        notes.append(
+            f"surfaces drawn with the posterior sd scaled by {np.sqrt(beliefs.objective_scale):.2f} (objective) "
+            f"and {np.sqrt(beliefs.margin_scale):.2f} (margin), from the leave-one-out residuals of the "
+            f"{beliefs.objective_residuals.size} hardware trial(s)"
+        )
+    elif calibrate:
+        notes.append("fewer than 2 hardware trials: the surfaces are drawn from the posterior unscaled")
     plan = budget_from_beliefs(
-        beliefs, target_fraction=target_fraction, target_value=target_value, confidence=confidence,
-        max_trials=max_trials, draws=draws, seed=inner_seed, max_fall_risk=max_fall_risk,
-        scenario=scenario.name, n_hardware=prior.n_hardware, notes=notes, progress=progress,
+        beliefs, target_fraction=target_fraction, target_value=target_value, target_within=target_within,
+        reach_share=reach_share, confidence=confidence, max_trials=max_trials, draws=draws, seed=inner_seed,
+        max_fall_risk=max_fall_risk, scenario=scenario.name, n_hardware=prior.n_hardware,
+        success_rule=success_rule_text(scenario.success_max), success=success, notes=notes, progress=progress,
     )
     plan.seed = int(seed)
     plan.seconds = time.perf_counter() - started

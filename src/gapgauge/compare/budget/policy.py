@@ -13,6 +13,10 @@ margin is below 0), and then only its margin is observed (a fallen trial's objec
 measurement, as in ``fit_prior``). When no candidate meets the fall-risk limit (``propose`` would stop
 and say so), the simulated user lifts the limit for that trial (EI x P(no fall) unconstrained, as with
 a higher ``max_fall_risk``); such trials are counted in ``infeasible_steps``.
+
+The policy never looks at the target, so one run serves every target: each draw's best latent
+objective among the trials that stood so far (``best_so_far``) gives the trials to any level
+(:func:`trials_to_level`), and the falls before it (:func:`falls_before`).
 """
 
 from __future__ import annotations
@@ -47,6 +51,8 @@ class PolicyRuns:
         chosen: ``(draws x max_trials)`` candidate index of each trial.
         fell: ``(draws x max_trials)`` bool, whether each trial fell.
         infeasible_steps: trials for which no candidate met the fall-risk limit.
+        best_so_far: ``(draws x max_trials)`` the lowest latent objective among the trials that stood up
+            to and including each trial (``inf`` before one stood), objective units.
     """
 
     trials_to_target: np.ndarray
@@ -54,12 +60,44 @@ class PolicyRuns:
     chosen: np.ndarray
     fell: np.ndarray
     infeasible_steps: int
+    best_so_far: np.ndarray | None = None
+
+
+def trials_to_level(best_so_far: np.ndarray, target: np.ndarray | float) -> np.ndarray:
+    """``(draws,)`` int: the first trial (1-based) whose best-so-far latent objective is at or below
+    ``target`` (a scalar or ``(draws,)``; NaN: never), ``max_trials + 1`` when none within the run."""
+    best = np.atleast_2d(best_so_far)
+    draws, max_trials = best.shape
+    target = np.broadcast_to(np.asarray(target, dtype=float), (draws,))
+    with np.errstate(invalid="ignore"):
+        hit = best <= target[:, None]
+    return np.where(hit.any(axis=1), np.argmax(hit, axis=1) + 1, max_trials + 1)
+
+
+def falls_before(fell: np.ndarray, trials: np.ndarray) -> np.ndarray:
+    """``(draws,)`` falls among the trials before ``trials (draws,)`` (the trial that reached the target
+    stood; a draw that never reached it counts every fall of its run)."""
+    fell = np.atleast_2d(fell)
+    before = np.arange(1, fell.shape[1] + 1)[None, :] < np.asarray(trials)[:, None]
+    return np.sum(fell & before, axis=1)
+
+
+def fall_risk(mean: np.ndarray, var: np.ndarray, noise: float, link: tuple[float, float, float] | None) -> np.ndarray:
+    """The modelled fall probability of a new trial from a margin belief's ``mean`` and latent ``var``
+    (any shape, m and m^2), as :meth:`gapgauge.compare.fall.FallModel.fall_probability`: with the probit
+    link ``(a, b, threshold)`` integrated over the latent margin, ``Phi((a + b (threshold - mu)) /
+    sqrt(1 + b^2 var))``; without one, ``P(margin < 0)`` of a new observation (latent variance plus
+    ``noise``)."""
+    if link is None:
+        return ndtr(-mean / np.maximum(np.sqrt(var + noise), 1e-12))
+    a, b, threshold = link
+    return ndtr((a + b * (threshold - mean)) / np.sqrt(1.0 + b**2 * var))
 
 
 def run_policy(
     objective_truth: np.ndarray,
     margin_truth: np.ndarray | None,
-    target: np.ndarray,
+    target: np.ndarray | None,
     objective_belief: Belief,
     margin_belief: Belief | None,
     *,
@@ -79,7 +117,8 @@ def run_policy(
         objective_truth: ``(draws x m)`` latent hardware objective of each draw at the candidates.
         margin_truth: ``(draws x m)`` latent margin of stability (m); a trial falls where it is < 0.
             None: nothing falls and the policy has no fall model.
-        target: ``(draws,)`` objective to reach in each draw (NaN: unreachable).
+        target: ``(draws,)`` objective to reach in each draw (NaN: unreachable); None: no target (the
+            runs' ``best_so_far`` then gives the trials to any level, :func:`trials_to_level`).
         objective_belief: the policy's model of the objective (its candidates are the truth's columns).
         margin_belief: the policy's fall model (margin), or None.
         max_trials: trials per draw.
@@ -110,7 +149,7 @@ def run_policy(
     z_margin = rng.standard_normal((draws, max_trials))
     random_choice = rng.integers(m, size=(draws, max_trials))
     u_fall = rng.uniform(size=(draws, max_trials))
-    target = np.broadcast_to(np.asarray(target, dtype=float), (draws,))
+    target = np.full(draws, np.nan) if target is None else np.broadcast_to(np.asarray(target, dtype=float), (draws,))
     margin_truth = None if margin_truth is None else np.atleast_2d(margin_truth)
     out = PolicyRuns(
         trials_to_target=np.full(draws, max_trials + 1),
@@ -118,6 +157,7 @@ def run_policy(
         chosen=np.zeros((draws, max_trials), dtype=int),
         fell=np.zeros((draws, max_trials), dtype=bool),
         infeasible_steps=0,
+        best_so_far=np.full((draws, max_trials), np.inf),
     )
     starts = range(0, draws, DRAW_CHUNK)
     total = len(starts) * max_trials
@@ -141,6 +181,7 @@ def run_policy(
             out.chosen[block] = runs.chosen
             out.fell[block] = runs.fell
             out.infeasible_steps += runs.infeasible_steps
+            out.best_so_far[block] = runs.best_so_far
     return out
 
 
@@ -174,6 +215,8 @@ def _run_block(
     falls = np.zeros(draws, dtype=int)
     chosen = np.zeros((draws, max_trials), dtype=int)
     fell_all = np.zeros((draws, max_trials), dtype=bool)
+    best_so_far = np.full((draws, max_trials), np.inf)
+    best = np.full(draws, np.inf)
     infeasible = 0
     for n in range(max_trials):
         if policy == "random":
@@ -200,11 +243,14 @@ def _run_block(
         observed[rows[stood], off_o + choice[stood]] = True
         waiting = trials > max_trials
         falls += waiting & fell
-        trials[waiting & stood & (truth <= target)] = n + 1
+        with np.errstate(invalid="ignore"):
+            trials[waiting & stood & (truth <= target)] = n + 1
+        best = np.where(stood, np.minimum(best, truth), best)
+        best_so_far[:, n] = best
         chosen[:, n] = choice
         fell_all[:, n] = fell
         step(n + 1)
-    return PolicyRuns(trials, falls, chosen, fell_all, infeasible)
+    return PolicyRuns(trials, falls, chosen, fell_all, infeasible, best_so_far)
 
 
 def _choose(
@@ -221,13 +267,7 @@ def _choose(
     if margin is None:
         risk = np.zeros_like(mean)
     else:
-        # as FallModel.fall_probability: P(margin < 0) of a new trial (latent variance plus noise)
-        mu, var = margin.mean[:, off_m:], margin.var[:, off_m:]
-        if margin.link is None:
-            risk = ndtr(-mu / np.maximum(np.sqrt(var + margin.noise), 1e-12))
-        else:  # as FallModel.fall_probability: the probit link integrated over the latent margin
-            a, b, threshold = margin.link
-            risk = ndtr((a + b * (threshold - mu)) / np.sqrt(1.0 + b**2 * var))
+        risk = fall_risk(margin.mean[:, off_m:], margin.var[:, off_m:], margin.noise, margin.link)
     feasible = risk <= max_fall_risk
     none_feasible = ~feasible.any(axis=1)
     # the plug-in incumbent of propose: lowest posterior mean at the trials so far; before any

@@ -127,6 +127,8 @@ class ShiftReport(Result):
     scenario: ScenarioRef = field(default_factory=ScenarioRef)
     notes: list[str] = field(default_factory=list)
     plots: list[str] = field(default_factory=list)
+    #: the features that read a channel flagged as unusual were left out, trial by trial
+    leave_out_flagged: bool = False
     hardware_values: np.ndarray | None = field(default=None, repr=False)
     simulated_values: np.ndarray | None = field(default=None, repr=False)
 

@@ -1,4 +1,5 @@
 """The report's sections, one module per result kind, each a function of
 :class:`~gapgauge.report.inputs.ReportInputs` returning the template's context with its figures:
-sweep, trials, shift, prior, proposals, budget, calibration; the first screen (decision, cards,
-cautions, section statuses) and the provenance appendix."""
+trials, motion (trajectories and the filmstrip), shift (with its "why" in ``shift_text``), calibration,
+prior, proposals, budget, sweep; the first screen (decision, the budget, stop-rule and calibration
+cards, key figures, cautions, section statuses) and the provenance appendix."""

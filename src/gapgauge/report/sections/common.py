@@ -1,5 +1,5 @@
-"""What every report section shares: the figure record, number formatting, the verdict words, the
-parameters of the trials in the unit cube."""
+"""What every report section shares: the figure record, number formatting (units from
+:mod:`gapgauge.quantities`), the verdict words, the parameter axes and the trials' parameters."""
 
 from __future__ import annotations
 
@@ -11,8 +11,10 @@ from typing import Any
 
 import numpy as np
 
+from ...quantities import format_count, format_number
 from ...records import TrialRecord
 from ...scenario import Scenario
+from ..plots import ParameterAxis
 
 VERDICT_WORDS = {
     "carries_over": "carries over",
@@ -56,17 +58,16 @@ def interval(value: Sequence[Any] | None) -> tuple[float, float] | None:
 
 
 def fmt(value: Any, digits: int = 3) -> str:
-    """A number for a table: thousands separated when large, ``digits`` significant figures otherwise."""
+    """A pure number (a count, a ratio, a p-value) for a table: counts with thousands separated, others
+    to ``digits`` significant figures; quantities with a unit go through :mod:`gapgauge.quantities`."""
     if isinstance(value, bool):
         return "yes" if value else "no"
     x = number(value)
     if x is None:
         return "–" if value is None or isinstance(value, (int, float, np.floating)) else str(value)
     if isinstance(value, (int, np.integer)):
-        return f"{int(value):,}"
-    if abs(x) >= 1000:
-        return f"{x:,.0f}"
-    return f"{x:.{digits}g}"
+        return format_count(int(value))
+    return format_number(x, digits)
 
 
 def fmt_interval(value: Sequence[Any] | None) -> str:
@@ -74,10 +75,14 @@ def fmt_interval(value: Sequence[Any] | None) -> str:
     return "–" if iv is None else f"[{fmt(iv[0])}, {fmt(iv[1])}]"
 
 
-def trials_unit(scenario: Scenario, trials: list[TrialRecord]) -> np.ndarray | None:
-    """The trials' parameters in the unit cube of the scenario's bounds, ``(m x dim)``, or None."""
+def parameter_axes(scenario: Scenario) -> list[ParameterAxis]:
+    """Each policy parameter's axis: its bounds in its unit, log where the scenario says so."""
+    return [ParameterAxis(p.name, p.unit, p.low, p.high, p.log) for p in scenario.parameters]
+
+
+def trials_params(scenario: Scenario, trials: list[TrialRecord]) -> np.ndarray | None:
+    """The trials' parameters ``(m x dim)`` in scenario units (NaN where a trial lacks one), or None."""
     if not trials:
         return None
     names = scenario.parameter_names
-    matrix = np.array([[t.params.get(n, np.nan) for n in names] for t in trials], dtype=float)
-    return np.clip(scenario.to_unit(matrix), 0.0, 1.0)
+    return np.array([[t.params.get(n, np.nan) for n in names] for t in trials], dtype=float)

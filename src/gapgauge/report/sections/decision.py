@@ -6,8 +6,8 @@ import math
 import shlex
 from dataclasses import dataclass
 
+from ...quantities import format_percent, label
 from ..inputs import ReportInputs, relative
-from . import budget as budget_section
 from . import calibration as calibration_section
 from . import prior as prior_section
 from . import proposals as proposals_section
@@ -96,20 +96,36 @@ def _prior_rules(inputs: ReportInputs, carry: str, reasons: list[str]) -> Decisi
             inputs.command("propose"),
             tuple(reasons),
         )
+    stop = getattr(inputs.proposals, "stop", None)
+    if stop is not None and getattr(stop, "stop", False):
+        reasons.append(f"stop rule: {proposals_section.stop_text(inputs.proposals)}")
+        return Decision(
+            f"{carry}; the stop rule says tuning is done",
+            "go",
+            "Stop tuning: keep the best parameters so far and confirm them with a repeat trial instead of "
+            "running the proposals.",
+            None,
+            tuple(reasons),
+        )
     risk = proposals_section.highest_fall_risk(inputs.proposals)
-    step = f"Go to hardware with the {n_proposed} proposed trials (highest modelled fall risk {risk:.3f})"
-    p80 = budget_section.p80(inputs.budget, "with_prior")
-    cold = budget_section.p80(inputs.budget, "cold_start")
+    step = f"Go to hardware with the {n_proposed} proposed trials (highest modelled fall risk {format_percent(risk)})"
     command = None
-    if inputs.budget is None:
+    budget = inputs.budget
+    if budget is None:
         command = inputs.command("budget")
         step += "; plan the trial budget first"
-    elif p80 is not None:
-        step += f"; budget P80 = {p80:.0f} trials"
-        if cold is not None:
-            step += f" (cold start {cold:.0f})"
-    else:  # planned, but 80% of the draws do not reach the target within the simulated horizon
-        step += f"; budget P80 beyond the {inputs.budget.max_trials} trials planned for"
+    else:  # the booking at the plan's level, as the budget card and the budget section show it
+        level = f"P{round(100 * budget.confidence)}"
+        book, cold = budget.with_prior.book, budget.cold_start.book
+        if book is not None:
+            step += f"; budget {level} = {book} trials"
+            if cold is not None:
+                step += f" (cold start {cold})"
+        else:  # planned, but the draws do not reach the target often enough within the simulated horizon
+            step += f"; budget {level} beyond the {budget.max_trials} trials planned for"
+    stop = getattr(inputs.proposals, "stop", None)
+    if stop is not None:
+        step += "; the stop rule says keep tuning"
     return Decision(carry, "go", step + ".", command, tuple(reasons))
 
 
@@ -127,9 +143,11 @@ def decide(inputs: ReportInputs) -> Decision:
     8. rho's interval reaches down to 0 (the simulation level does not inform hardware), or the prior's
        leave-one-out error is worse than hardware alone: tune on hardware with care, calibrate first
        if not done;
-    9. otherwise go to hardware with the proposed trials (``gapgauge propose`` if there are none),
-       quoting the budget's P80 (``gapgauge budget`` if there is no budget; "beyond the trials
-       planned for" when the draws do not reach the target within the budget's horizon).
+    9. the proposals' stop rule (Wilson 2024) says the best so far is good enough: stop tuning;
+    10. otherwise go to hardware with the proposed trials (``gapgauge propose`` if there are none),
+        quoting the budget's booking at its level, P80 by default (``gapgauge budget`` if there is no
+        budget; "beyond the trials planned for" when the draws do not reach the target within the
+        budget's horizon).
     """
     n_rollouts, n_trials = inputs.n_rollouts, len(inputs.trials)
     if n_rollouts == 0:
@@ -169,7 +187,7 @@ def decide(inputs: ReportInputs) -> Decision:
         f"with the order kept, {bad} do not carry over, {counts['undecided']} undecided"
     )
     if decided and bad * 2 >= decided:
-        bad_names = shift_section.names_with(shift, "does_not_carry_over")
+        bad_names = [label(n) for n in shift_section.names_with(shift, "does_not_carry_over")]
         shown = ", ".join(bad_names[:NAMES_IN_VERDICT]) + (", ..." if len(bad_names) > NAMES_IN_VERDICT else "")
         verdict = f"Simulation does not carry over ({bad} of {total} features: {shown})"
         if inputs.calibration is not None:

@@ -1,24 +1,29 @@
-"""The first screen beside the verdict: the key-figure cards, which sections have their data (and the
-command that fills the others), and the cautions that hold for this store."""
+"""The first screen beside the verdict and the next step: the budget as a number with its target, the
+stop rule, the calibration's finding, the key figures (in the words of the tables below them), which
+sections have their data (and the command that fills the others), and the cautions for this store."""
 
 from __future__ import annotations
 
 from dataclasses import dataclass
 
+from ...quantities import format_percent
 from ..inputs import RESULT_KINDS, ReportInputs
 from . import budget as budget_section
+from . import calibration as calibration_section
 from . import proposals as proposals_section
-from .common import fmt, fmt_interval, interval
+from . import shift as shift_section
+from .common import VERDICT_WORDS, fmt, fmt_interval, interval
 from .sweep import sweep_summary
 
 SECTION_TITLES = {
-    "sweep": "The simulation sweep",
     "trials": "Hardware trials",
+    "motion": "Motion: hardware against simulation",
     "shift": "Feature shift: does simulation carry over?",
+    "calibration": "Simulator calibration",
     "prior": "The multi-fidelity prior",
     "proposals": "Proposed next trials",
     "budget": "Trial budget",
-    "calibration": "Simulator calibration",
+    "sweep": "The simulation sweep",
 }
 FEW_TRIALS = 5  # below this many trials the report warns that verdicts and rho are uncertain
 
@@ -31,6 +36,7 @@ class SectionStatus:
     title: str
     filled: bool
     fill_command: str | None
+    note: str = ""  # why a stored result was left out (an older format), "" otherwise
 
 
 def section_statuses(inputs: ReportInputs) -> list[SectionStatus]:
@@ -38,6 +44,7 @@ def section_statuses(inputs: ReportInputs) -> list[SectionStatus]:
     filled = {
         "sweep": inputs.rollouts is not None,
         "trials": bool(inputs.trials),
+        "motion": any(m.hardware is not None or m.simulated is not None for m in inputs.motion),
         **{kind: results[kind] is not None for kind in RESULT_KINDS},
     }
     commands = {
@@ -46,6 +53,7 @@ def section_statuses(inputs: ReportInputs) -> list[SectionStatus]:
         + "  (run them on the robot, then: "
         + inputs.command("ingest", "LOG.csv", "...")
         + ")",
+        "motion": inputs.command("ingest", "LOG.csv", "..."),
         "shift": inputs.command("shift"),
         "prior": inputs.command("prior"),
         "proposals": inputs.command("propose"),
@@ -53,70 +61,73 @@ def section_statuses(inputs: ReportInputs) -> list[SectionStatus]:
         "calibration": inputs.command("calibrate"),
     }
     return [
-        SectionStatus(name, title, filled[name], None if filled[name] else commands[name])
+        SectionStatus(name, title, filled[name], None if filled[name] else commands[name], inputs.stale.get(name, ""))
         for name, title in SECTION_TITLES.items()
     ]
 
 
-def _budget_card(inputs: ReportInputs) -> dict[str, str]:
+def budget_card(inputs: ReportInputs) -> dict[str, str]:
+    """The budget as a number of trials at the booking level, with its target in words."""
     budget = inputs.budget
     if budget is None:
-        return {"label": "Trial budget (P80)", "value": "–", "sub": "run gapgauge budget"}
-    p80 = budget_section.p80(budget, "with_prior")
-    cold = budget_section.p80(budget, "cold_start")
+        return {"label": "Trial budget", "value": "not planned yet", "sub": f"run {inputs.command('budget')}"}
+    level = f"P{round(100 * budget.confidence)}"
+    book = budget_section.trials_text(budget.with_prior.book, budget)
+    cold = budget_section.trials_text(budget.cold_start.book, budget)
+    sub = f"to reach: {budget_section.target_text(budget, inputs.scenario)}; cold start {cold} trials"
+    more = budget_section.beyond(budget)
     return {
-        "label": "Trial budget (P80)",
-        "value": f"{budget_section.trials_text(p80, budget)} trials",
-        "sub": f"cold start {fmt(cold)}; saving {fmt(cold - p80)}"
-        if cold is not None and p80 is not None
-        else f"with the prior; cold start {budget_section.trials_text(cold, budget)}",
+        "label": f"Trial budget ({level}, with the simulation prior)",
+        "value": f"{book} trials",
+        "sub": sub + (f". {more}" if more else ""),
     }
 
 
-def _rho_card(inputs: ReportInputs) -> dict[str, str]:
-    prior = inputs.prior
-    if prior is None:
-        return {"label": "rho (sim to hardware)", "value": "–", "sub": "run gapgauge prior"}
-    iv = interval(prior.rho_interval)
-    return {
-        "label": "rho (sim to hardware)",
-        "value": fmt(prior.rho),
-        "sub": f"95% interval {fmt_interval(iv)}" if iv else "no interval",
-    }
+def stop_card(inputs: ReportInputs) -> dict[str, str]:
+    """When to stop tuning: the proposals' stop rule, or what would give one."""
+    text = proposals_section.stop_text(inputs.proposals)
+    if text is not None:
+        return {"label": "When to stop", "value": text}
+    if inputs.proposals is None:
+        return {"label": "When to stop", "value": f"no stop rule yet: run {inputs.command('propose')}"}
+    return {"label": "When to stop", "value": "the stored proposals carry no stop rule; propose again to get one"}
 
 
-def _verdict_tally(inputs: ReportInputs) -> str:
+def calibration_card(inputs: ReportInputs) -> dict[str, str]:
+    """The calibration's main finding in a sentence, or what would give one."""
+    text = calibration_section.finding(inputs.calibration)
+    if text is None:
+        return {"label": "Calibration", "value": f"not calibrated yet: run {inputs.command('calibrate')}"}
+    return {"label": "Calibration: what the trials say about the robot", "value": text}
+
+
+def verdict_tally(inputs: ReportInputs) -> str:
+    """The shift verdicts counted, in the words of the shift table."""
     shift = inputs.shift
     if shift is None or not shift.features:
-        return "–"
-    good = sum(1 for f in shift.features if f.verdict in ("carries_over", "offset_order_kept"))
-    return f"{good} / {len(shift.features)}"
+        return "not assessed"
+    counts = shift_section.verdict_counts(shift)
+    return ", ".join(f"{n} {VERDICT_WORDS[v]}" for v, n in counts.items() if n)
 
 
 def cards(inputs: ReportInputs) -> list[dict[str, str]]:
-    """The key figures of the first screen: label, value, and a line under it."""
+    """The key figures under the first screen: label, value, and a line under it."""
     sweep = sweep_summary(inputs.scenario, inputs.rollouts)
     n_syn = inputs.n_synthetic
     risk = proposals_section.highest_fall_risk(inputs.proposals)
+    prior = inputs.prior
+    iv = None if prior is None else interval(prior.rho_interval)
     return [
-        _budget_card(inputs),
-        _rho_card(inputs),
-        {
-            "label": "Hardware trials",
-            "value": fmt(len(inputs.trials)),
-            "sub": f"{n_syn} synthetic (stand-in)" if n_syn else "all from hardware" if inputs.trials else "none yet",
-        },
-        {
-            "label": "Sweep rollouts",
-            "value": fmt(sweep["total"]),
-            "sub": f"{fmt(sweep['fell'])} fell, {fmt(sweep['diverged'])} diverged" if sweep["total"] else "none yet",
-        },
-        {
-            "label": "Proposed trials",
-            "value": fmt(proposals_section.count(inputs.proposals)),
-            "sub": "run gapgauge propose" if risk is None else f"max fall risk {fmt(risk)}",
-        },
-        {"label": "Verdicts", "value": _verdict_tally(inputs), "sub": "features carrying over / of all"},
+        {"label": "Features (of the shift table)", "value": verdict_tally(inputs),
+         "sub": "" if inputs.shift is None else f"of {len(inputs.shift.features)} features"},
+        {"label": "rho (sim to hardware)", "value": "–" if prior is None else fmt(prior.rho),
+         "sub": "run gapgauge prior" if prior is None else f"95% interval {fmt_interval(iv)}" if iv else "no interval"},
+        {"label": "Hardware trials", "value": fmt(len(inputs.trials)),
+         "sub": f"{n_syn} synthetic (stand-in)" if n_syn else "all from hardware" if inputs.trials else "none yet"},
+        {"label": "Sweep rollouts", "value": fmt(sweep["total"]),
+         "sub": f"{fmt(sweep['fell'])} fell, {fmt(sweep['diverged'])} diverged" if sweep["total"] else "none yet"},
+        {"label": "Proposed trials", "value": fmt(proposals_section.count(inputs.proposals)),
+         "sub": "run gapgauge propose" if risk is None else f"highest modelled fall risk {format_percent(risk)}"},
     ]
 
 

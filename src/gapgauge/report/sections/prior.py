@@ -8,7 +8,8 @@ from typing import Any
 import numpy as np
 
 from ...compare.prior import PriorFit
-from .. import plots
+from ...quantities import format_quantity
+from .. import result_plots
 from ..inputs import ReportInputs
 from .common import Figure, fmt, fmt_interval, number
 
@@ -24,14 +25,19 @@ def loo_rmse(prior: PriorFit, model: str) -> float | None:
     return number(prior.loo[model]["rmse"]) if model in prior.loo else None
 
 
+def _headline(prior: PriorFit) -> list[tuple[str, str]]:
+    return [
+        ("rho (hardware per unit of simulation)", fmt(prior.rho)),
+        ("rho, 95% interval", fmt_interval(prior.rho_interval)),
+        ("discrepancy scale (objective)", fmt(prior.discrepancy_scale)),
+        ("offset (objective)", fmt(prior.offset)),
+        ("hardware noise sd (objective)", fmt(prior.hardware_noise_sd)),
+    ]
+
+
 def _table(prior: PriorFit) -> list[tuple[str, str]]:
     return [
-        ("rho", fmt(prior.rho)),
-        ("rho interval", fmt_interval(prior.rho_interval)),
-        ("fit time", f"{fmt(prior.fit_seconds)} s"),
-        ("discrepancy scale", fmt(prior.discrepancy_scale)),
-        ("offset", fmt(prior.offset)),
-        ("hardware noise sd", fmt(prior.hardware_noise_sd)),
+        ("fit time", format_quantity(prior.fit_seconds, "s")),
         (
             "simulation level",
             prior.simulation_level + (" (reused from the previous fit)" if prior.simulation_reused else ""),
@@ -78,7 +84,7 @@ def _fitted_at_trials(inputs: ReportInputs) -> Figure | None:
     hardware = np.array([t.objective for _, t in stood], dtype=float)
     return Figure(
         "prior_vs_hardware",
-        plots.prior_vs_hardware(
+        result_plots.prior_vs_hardware(
             hardware, np.asarray(mean, float).ravel(), np.asarray(sd, float).ravel(), [str(i) for i, _ in stood]
         ),
         "hardware objective against the fitted prior",
@@ -103,7 +109,7 @@ def prior_section(inputs: ReportInputs) -> dict[str, Any] | None:
         figures.append(
             Figure(
                 "prior_loo",
-                plots.loo_comparison(
+                result_plots.loo_comparison(
                     [r["name"] for r in usable], [r["rmse_value"] for r in usable], [r["lpd_value"] for r in usable]
                 ),
                 "leave-one-out comparison",
@@ -111,4 +117,4 @@ def prior_section(inputs: ReportInputs) -> dict[str, Any] | None:
                 "simulation level alone.",
             )
         )
-    return {"figures_table": _table(prior), "loo": loo, "figures": figures}
+    return {"headline": _headline(prior), "figures_table": _table(prior), "loo": loo, "figures": figures}

@@ -8,17 +8,19 @@ from typing import Any
 import numpy as np
 
 from ...compare.shift import FeatureShift, ShiftReport
+from ...quantities import display_unit, feature_unit, format_interval, format_quantity, label
 from .. import shift_plots
 from ..inputs import ReportInputs
 from .common import VERDICT_WORDS, Figure, fmt, fmt_interval
+from .shift_text import detail
 
 COLUMNS = (
-    "trials",
-    "max |residual|",
+    "hardware mean",
+    "simulated mean",
     "bias",
     "bias interval",
     "bias / sim sd",
-    "Wasserstein / sim sd",
+    "max |residual| (sd)",
     "Kendall tau",
     "more trials to decide",
 )
@@ -52,15 +54,24 @@ def mmd_p_value(shift: ShiftReport) -> float:
     return float(shift.joint.mmd_p_value)
 
 
+def _mean(values: list[float]) -> float | None:
+    finite = [v for v in values if v is not None and np.isfinite(v)]
+    return float(np.mean(finite)) if finite else None
+
+
 def _cells(f: FeatureShift) -> list[str]:
-    """One row of the shift table, in the order of :data:`COLUMNS`."""
+    """One row of the shift table, in the order of :data:`COLUMNS`: values in the feature's unit (one
+    display unit for the row), ratios in simulated spreads, counts as counts."""
+    unit = feature_unit(f.name)
+    hardware, simulated = _mean(f.hardware), _mean(f.simulated_mean)
+    shown = display_unit(unit, [v for v in (hardware, simulated, f.bias, *f.bias_test_interval) if v is not None])
     return [
-        fmt(f.n_trials),
-        fmt(f.max_abs_residual),
-        fmt(f.bias),
-        fmt_interval(f.bias_test_interval),
+        format_quantity(hardware, unit, display=shown),
+        format_quantity(simulated, unit, display=shown),
+        format_quantity(f.bias, unit, display=shown, signed=True),
+        format_interval(f.bias_test_interval, unit, display=shown),
         fmt(f.bias_sd_units),
-        fmt(f.wasserstein_sd_units),
+        fmt(f.max_abs_residual),
         fmt(None if f.rank is None else f.rank.kendall),
         fmt(f.more_trials),
     ]
@@ -70,8 +81,8 @@ def _joint_rows(shift: ShiftReport) -> list[tuple[str, str]]:
     j = shift.joint
     return [
         ("features tested", fmt(len(j.features))),
-        ("MMD² (unbiased)", fmt(j.mmd2)),
-        ("MMD kernel width", fmt(j.mmd_width)),
+        ("MMD² (unbiased, on standardised features)", fmt(j.mmd2)),
+        ("MMD kernel width (standardised units)", fmt(j.mmd_width)),
         ("MMD p-value", fmt(j.mmd_p_value)),
         ("MMD permutations", fmt(j.mmd_permutations)),
         ("classifier AUC", fmt(j.classifier_auc)),
@@ -95,16 +106,17 @@ def _objective_rows(shift: ShiftReport) -> list[tuple[str, str]]:
         ("Spearman interval", fmt_interval(o.rank.spearman_interval)),
         ("link slope (hardware per simulated)", fmt(o.link.slope)),
         ("link slope interval", fmt_interval(o.link.slope_interval)),
-        ("link intercept", fmt(o.link.intercept)),
+        ("link intercept (objective)", fmt(o.link.intercept)),
     ]
 
 
 def _settings_text(shift: ShiftReport) -> str:
     s = shift.settings
     return (
-        f"level {fmt(s.level)}, residual limit {fmt(s.residual_limit)}, offset limit {fmt(s.offset_limit)}, "
-        f"rank threshold {fmt(s.rank_threshold)}, bootstrap {fmt(s.bootstrap)}, permutations "
-        f"{fmt(s.permutations)}, power {fmt(s.power)}"
+        f"significance level {fmt(s.level)}; a residual within ±{fmt(s.residual_limit)} simulated sd is "
+        f"consistent; an offset within ±{fmt(s.offset_limit)} simulated sd is none; the order carries over "
+        f"at Kendall tau ≥ {fmt(s.rank_threshold)}; {fmt(s.bootstrap)} bootstrap resamples, "
+        f"{fmt(s.permutations)} permutations, power {fmt(s.power)}"
     )
 
 
@@ -130,8 +142,9 @@ def _figures(shift: ShiftReport) -> list[Figure]:
             Figure(
                 f"shift_{feature.name}",
                 png,
-                f"shift of {feature.name}",
-                f"{feature.name}: the simulated distribution at the trials' parameters with the hardware values.",
+                f"shift of {label(feature.name)}",
+                f"{label(feature.name)}: the matched simulations at each trial's parameters (violins, dots) "
+                "with the hardware value (diamond); right: the standardised residual against the limit.",
             )
         )
     return out
@@ -145,18 +158,21 @@ def shift_section(inputs: ReportInputs) -> dict[str, Any] | None:
     rows = [
         {
             "name": f.name,
+            "label": label(f.name),
+            "unit": feature_unit(f.name) or "",
             "verdict": VERDICT_WORDS.get(f.verdict, f.verdict),
             "verdict_class": f.verdict if f.verdict in VERDICT_WORDS else "undecided",
             "cells": _cells(f),
-            "detail": f.reason,
+            "detail": detail(f, shift.settings),
         }
         for f in shift.features
     ]
     return {
-        "columns": list(COLUMNS),
+        "columns": [f"{1 - level(shift):.0%} bias interval" if c == "bias interval" else c for c in COLUMNS],
         "rows": rows,
         "joint": _joint_rows(shift),
         "objective": _objective_rows(shift),
         "settings": _settings_text(shift),
         "figures": _figures(shift),
+        "n_trials": fmt(max((f.n_trials for f in shift.features), default=0)),
     }

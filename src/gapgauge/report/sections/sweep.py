@@ -7,11 +7,12 @@ from typing import Any
 
 import numpy as np
 
+from ...quantities import format_count, format_number
 from ...records import RolloutBatch
 from ...scenario import Scenario
 from .. import plots
 from ..inputs import ReportInputs
-from .common import Figure, fmt, trials_unit
+from .common import Figure, parameter_axes, trials_params
 
 COVERAGE_PARAMETERS = 4
 MIN_STOOD_FOR_LANDSCAPE = 10  # fewer rollouts that stood than this: rank parameters by falling instead
@@ -68,6 +69,7 @@ def sweep_section(inputs: ReportInputs) -> dict[str, Any] | None:
         return None
     scenario = inputs.scenario
     names = scenario.parameter_names
+    axes = parameter_axes(scenario)
     summary = sweep_summary(scenario, batch)
     status = np.asarray(batch.status).astype(str)
     objective = np.asarray(batch.objective, dtype=float)
@@ -75,7 +77,7 @@ def sweep_section(inputs: ReportInputs) -> dict[str, Any] | None:
     settled = status != "diverged"
     ok = status == "ok"
     fell = status == "fell"
-    trials = trials_unit(scenario, inputs.trials)
+    trials = trials_params(scenario, inputs.trials)
     landscape = ok.sum() >= MIN_STOOD_FOR_LANDSCAPE
     if landscape:
         picked = ranked_parameters(unit[ok], objective[ok], COVERAGE_PARAMETERS)
@@ -90,30 +92,30 @@ def sweep_section(inputs: ReportInputs) -> dict[str, Any] | None:
             Figure(
                 "sweep_coverage",
                 plots.coverage_pairs(
-                    unit[:, picked], picked_names, status, None if trials is None else trials[:, picked]
+                    batch.params[:, picked], [axes[i] for i in picked], status,
+                    None if trials is None else trials[:, picked],
                 ),
                 "pairwise coverage of the parameter space",
-                f"Coverage: pairwise scatter of {', '.join(picked_names)} ({why}) in the unit cube of "
-                "their bounds (log axes in log space); colour is the rollout's status, stars are "
-                "hardware trials.",
+                f"Coverage: pairwise scatter of {', '.join(picked_names)} ({why}) over their bounds, in "
+                "their own units (log axes where the scenario says so); colour is the rollout's status, "
+                "stars are hardware trials.",
             )
         )
     if settled.any():
         figures.append(
             Figure(
                 "sweep_fall_rate",
-                plots.fall_rate_by_parameter(unit[settled], names, fell[settled]),
+                plots.fall_rate_by_parameter(unit[settled], axes, fell[settled]),
                 "fall rate by parameter",
-                "Where falls happen: the share of rollouts that fell, in ten bins of each parameter "
-                "(0 = low bound, 1 = high bound), all other parameters and physics draws marginalised; "
-                "dashed: overall fall rate.",
+                "Where falls happen: the share of rollouts that fell, in ten bins of each parameter over "
+                "its bounds, all other parameters and physics draws marginalised; dashed: overall fall rate.",
             )
         )
     if landscape:
         figures.append(
             Figure(
                 "sweep_objective_slices",
-                plots.objective_slices(unit[ok], names, objective[ok]),
+                plots.objective_slices(unit[ok], axes, objective[ok]),
                 "objective along each parameter",
                 "Slices of the objective landscape (rollouts that stood): binned mean (line) and "
                 "inter-quartile band along each parameter, lower is better.",
@@ -125,14 +127,14 @@ def sweep_section(inputs: ReportInputs) -> dict[str, Any] | None:
             figures.append(
                 Figure(
                     "sweep_objective_map",
-                    plots.objective_map(unit[ok, i], unit[ok, j], objective[ok], (names[i], names[j])),
+                    plots.objective_map(unit[ok, i], unit[ok, j], objective[ok], (axes[i], axes[j])),
                     f"objective over {names[i]} and {names[j]}",
-                    f"A 2-D slice: mean objective over {names[i]} and {names[j]} (unit cube), other "
-                    "parameters marginalised; blank cells hold no rollout that stood.",
+                    f"A 2-D slice: mean objective over {names[i]} and {names[j]}, other parameters "
+                    "marginalised; blank cells hold no rollout that stood.",
                 )
             )
     return {
-        **{k: fmt(summary[k]) for k in ("total", "ok", "fell", "diverged")},
-        "best": fmt(summary["best_objective"]) if "best_objective" in summary else None,
+        **{k: format_count(summary[k]) for k in ("total", "ok", "fell", "diverged")},
+        "best": format_number(summary["best_objective"]) if "best_objective" in summary else None,
         "figures": figures,
     }

@@ -23,8 +23,18 @@ def trials_section(inputs: ReportInputs) -> list[dict[str, Any]]:
             "synthetic": bool(t.synthetic),
             "objective": fmt(t.objective),
             "notes": t.notes,
+            "checks": _checks(t.extra),
             "ingested_at": t.ingested_at,
             "tool_version": t.tool_version,
         }
         for t in inputs.trials
     ]
+
+
+def _checks(extra: dict[str, Any]) -> list[str]:
+    """What ingest noticed and kept (gapgauge.logs): unusual channels, and an onset not placed in time."""
+    lines = [str(f.get("detail", "")) for f in extra.get("flags") or [] if isinstance(f, dict)]
+    alignment = extra.get("alignment") if isinstance(extra.get("alignment"), dict) else {}
+    if alignment.get("placed") is False:
+        lines.append(f"onset not placed ({alignment.get('reason', '')}): left out of the shift assessment")
+    return lines
