@@ -80,7 +80,7 @@ MARGIN = "margin_of_stability"
 MAX_FALL_RISK = 0.05
 # bump when the realised runs' method (propose, the refits, the stop rule) changes: their cache is keyed by it
 RUN_VERSION = "r1"
-STOP_VERSION = "s1"  # the same for the stop rule's replay
+STOP_VERSION = "s2"  # the same for the stop rule's replay
 BUDGET_VERSION = "b1"  # the same for the budget (plan_budget's method)
 WIDEN = 0.2  # random profiles: each physics range widened by this share of its width on both sides
 FULL = {"runs": 30, "max_trials": 20, "draws": 128, "candidates": 1024, "sweep": 2000, "design": 2048, "refine": 8}

@@ -24,7 +24,8 @@ Steps, each printed:
    Python start-up and imports included), and the read of what the prior needs (``read_prior_data``).
 2. Held out: ``--test`` standing rollouts of the seed-0 run, chosen as issue 5's benchmark chose them
    (a permutation seeded by ``--seed``), the same set at every size and never in any training set.
-3. ``fit_prior`` (objective and fall model, ``--inducing`` inducing points) on every other row, timed;
+3. ``fit_prior`` (objective and fall model; ``--inducing`` inducing points, default ``fit_prior``'s: 300,
+   or 600 above 10^5 rollouts) on every other row, for each of ``--fit-seeds``, timed;
    held-out RMSE and R^2 of its simulation level against the held-out rollouts' objective.
 4. Propose after a new trial, on a scratch copy of the store: three synthetic trials (real standing
    rollouts of the held-out set, objective + 0.1; labelled synthetic), the prior job (read, full fit,
@@ -81,6 +82,7 @@ JITTER_SD = 0.01  # unit cube
 REPLICA_PHYSICS_SEED = 7
 WRITE_CHUNK = 10_000
 HARDWARE_OFFSET = 0.1  # objective units added to the synthetic trials
+ISSUE5_INDUCING = 300  # issue 5's sparse-vs-exact comparison, unchanged
 
 
 def exact_gp(X: np.ndarray, y: np.ndarray, seed: int) -> tuple[GaussianProcessRegressor, float]:
@@ -124,13 +126,15 @@ def real_sweeps(scenario, store_path: Path, total: int, per_run: int) -> list:
     return summaries
 
 
-def held_out_keys(batch: RolloutBatch, run_id: int, n_test: int, seed: int) -> set[tuple[int, int]]:
-    """(run, index) of the held-out standing rollouts of run ``run_id``: issue 5's choice."""
+def held_out_keys(batch: RolloutBatch, run_id: int, n_test: int, seed: int) -> tuple[set[tuple[int, int]], np.ndarray]:
+    """(run, index) of the held-out standing rollouts of run ``run_id`` and the rows of its other standing
+    rollouts in the permuted order issue 5's benchmark trained on (its choice: one seeded permutation)."""
     mask = (batch.run_ids == run_id) & (batch.status == "ok") & np.isfinite(batch.objective)
     rows = np.flatnonzero(mask)
     order = np.random.default_rng(seed).permutation(rows.size)
-    chosen = rows[order[:min(n_test, rows.size // 5)]]
-    return {(int(batch.run_ids[i]), int(batch.indices[i])) for i in chosen}
+    n_test = min(n_test, rows.size // 5)
+    chosen = rows[order[:n_test]]
+    return {(int(batch.run_ids[i]), int(batch.indices[i])) for i in chosen}, rows[order[n_test:]]
 
 
 def split(batch: RolloutBatch, keys: set[tuple[int, int]]) -> tuple[np.ndarray, np.ndarray]:
@@ -255,7 +259,8 @@ def main() -> None:
     parser.add_argument("--per-run", type=int, default=100_000, help="rollouts per real sweep (one seed each)")
     parser.add_argument("--max-real", type=int, default=200_000, help="above this, rows are replicated")
     parser.add_argument("--test", type=int, default=2000, help="held-out standing rollouts")
-    parser.add_argument("--inducing", type=int, default=300, help="inducing points of the sparse GP")
+    parser.add_argument("--inducing", type=int, default=None,
+                        help="inducing points of the prior (default: fit_prior's, 300 or 600 above 10^5 rollouts)")
     parser.add_argument("--seed", type=int, default=0)
     parser.add_argument("--exact-memory-gb", type=float, default=1.5,
                         help="cap on scikit-learn's gradient tensor (n^2 x 15 doubles)")
@@ -275,8 +280,14 @@ def main() -> None:
     summaries = real_sweeps(scenario, real_path, min(n, args.max_real), per_run)
     with Store(real_path) as store:
         real = store.rollouts(scenario.content_hash, kinds=("sweep",), run_ids=[s.run_id for s in summaries])
-    keys = held_out_keys(real, summaries[0].run_id, args.test, args.seed)
+    keys, first_run_rows = held_out_keys(real, summaries[0].run_id, args.test, args.seed)
     train, held = split(real, keys)
+    # issue 5's comparison trains on the first run's standing rollouts in its permuted order, then the others
+    others = np.flatnonzero(train & (real.status == "ok") & np.isfinite(real.objective)
+                            & (real.run_ids != summaries[0].run_id))
+    issue5_rows = np.concatenate([first_run_rows, others])
+    X5, y5 = scenario.to_unit(real.params[issue5_rows]), real.objective[issue5_rows]
+    n_first_run = first_run_rows.size + len(keys)
     params_test, X_test, y_test = real.params[held], scenario.to_unit(real.params[held]), real.objective[held]
     trials = synthetic_trials(scenario, real, held, 4)
     say(f"real rollouts: {len(real):,} in runs {[s.run_id for s in summaries]}; held out {int(held.sum())} standing "
@@ -309,13 +320,14 @@ def main() -> None:
         predicted = prior.predict_simulation(params_test, return_std=False)
         fits.append({"seed": fit_seed, "seconds": round(seconds, 2), "cpu_seconds": round(cpu, 2),
                      "rmse": round(rmse(predicted, y_test), 5), "r2": round(r_squared(predicted, y_test), 5)})
-        say(f"fit_prior (seed {fit_seed}) on {prior.n_sim:,} standing + {prior.n_sim_fall_model:,} margins: "
+        say(f"fit_prior (seed {fit_seed}, {prior.max_inducing} inducing points) on {prior.n_sim:,} standing + "
+            f"{prior.n_sim_fall_model:,} margins: "
             f"{seconds:.1f} s ({cpu:.1f} s CPU); held-out RMSE {fits[-1]['rmse']:.4f}, R^2 {fits[-1]['r2']:.4f} "
             f"({y_test.size} rollouts)")
     fit_seconds_prior, prior_rmse = fits[0]["seconds"], float(np.mean([f["rmse"] for f in fits]))
     prior_r2 = float(np.mean([f["r2"] for f in fits]))
     say(f"held-out over {len(fits)} fit seed(s): RMSE {prior_rmse:.4f}, R^2 {prior_r2:.4f}")
-    X_train, y_train = data.X_sim, data.y_sim
+    X_train, y_train, prior_inducing = data.X_sim, data.y_sim, prior.max_inducing
     del data, prior
     figures.update(propose_after_trial(scenario, store_path, trials, args))
     peak = peak_memory_mb()
@@ -333,34 +345,37 @@ def main() -> None:
         say(f"simulation level with {m} inducing points on {y_train.size:,}: {seconds:.1f} s, held-out RMSE "
             f"{inducing[m]['rmse']:.4f}, R^2 {inducing[m]['r2']:.4f}")
 
+    if replicated:  # no first run in the replicated store: its rows in store order (replicas of random real rows)
+        X5, y5 = X_train, y_train
     start = time.perf_counter()
-    sparse = SparseGP(n_inducing=args.inducing, random_state=args.seed).fit(X_train, y_train)
+    sparse = SparseGP(n_inducing=ISSUE5_INDUCING, random_state=args.seed).fit(X5, y5)
     fit_seconds = time.perf_counter() - start
     sparse_rmse = rmse(sparse.predict(X_test), y_test)
-    say(f"sparse GP alone (m = {args.inducing}) on {y_train.size:,}: {fit_seconds:.1f} s, held-out RMSE "
+    say(f"sparse GP alone (m = {ISSUE5_INDUCING}) on {y5.size:,}: {fit_seconds:.1f} s, held-out RMSE "
         f"{sparse_rmse:.4g}, noise sd {np.sqrt(sparse.noise_) * sparse.y_std_:.4g}")
     memory_cap = int(np.sqrt(args.exact_memory_gb * 1e9 / (8 * 15)))
     rng = np.random.default_rng(args.seed)
-    pilot_n = min(PILOT_N, y_train.size)
-    _, pilot_seconds = exact_gp(X_train[:pilot_n], y_train[:pilot_n], args.seed)
+    rng.permutation(n_first_run)  # issue 5's held-out draw came first from the same generator
+    pilot_n = min(PILOT_N, y5.size)
+    _, pilot_seconds = exact_gp(X5[:pilot_n], y5[:pilot_n], args.seed)
     exact_n = int(pilot_n * (fit_seconds / pilot_seconds) ** (1 / 3))
-    exact_n = max(pilot_n, min(exact_n, memory_cap, y_train.size))
-    subset = rng.choice(y_train.size, size=exact_n, replace=False)
-    model, exact_seconds = exact_gp(X_train[subset], y_train[subset], args.seed)
+    exact_n = max(pilot_n, min(exact_n, memory_cap, y5.size))
+    subset = rng.choice(y5.size, size=exact_n, replace=False)
+    model, exact_seconds = exact_gp(X5[subset], y5[subset], args.seed)
     if exact_seconds > fit_seconds and exact_n > pilot_n:
         exact_n = max(pilot_n, int(0.8 * exact_n))
         subset = subset[:exact_n]
-        model, exact_seconds = exact_gp(X_train[subset], y_train[subset], args.seed)
+        model, exact_seconds = exact_gp(X5[subset], y5[subset], args.seed)
     exact_rmse = rmse(model.predict(X_test), y_test)
     say(f"exact GP on {exact_n}: {exact_seconds:.1f} s, held-out RMSE {exact_rmse:.4g}")
 
     print(json.dumps({
-        "rollouts": n, "replicated": replicated, "n": int(y_train.size),
+        "rollouts": n, "replicated": replicated, "n": int(y_train.size), "n_issue5": int(y5.size),
         "fit_prior_seconds": round(fit_seconds_prior, 2), "prior_rmse": round(prior_rmse, 5),
         "prior_r2": round(prior_r2, 5), "fits": fits, **figures, "peak_memory_mb": round(peak, 1),
         "fit_seconds": round(fit_seconds, 2), "rmse": round(sparse_rmse, 5), "exact_n": int(exact_n),
         "exact_seconds": round(exact_seconds, 2), "exact_rmse": round(exact_rmse, 5), "held_out": int(y_test.size),
-        "inducing": args.inducing, "objective_sd": round(float(np.std(y_test)), 5),
+        "inducing": prior_inducing, "issue5_inducing": ISSUE5_INDUCING, "objective_sd": round(float(np.std(y_test)), 5),
         "max_fall_risk": args.max_fall_risk, "inducing_comparison": inducing,
         "load_average": [round(v, 2) for v in os.getloadavg()],
         "date": time.strftime("%Y-%m-%d %H:%M UTC", time.gmtime()),

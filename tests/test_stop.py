@@ -13,7 +13,7 @@ from sklearn.gaussian_process.kernels import ConstantKernel, Matern
 from gapgauge.app.prior import current_prior
 from gapgauge.app.propose import propose
 from gapgauge.cli import main
-from gapgauge.compare.budget import candidate_set
+from gapgauge.compare.budget import candidate_set, loo_variance_scale
 from gapgauge.compare.propose import Proposals
 from gapgauge.compare.stop import (
     DRAW_BATCH,
@@ -122,6 +122,17 @@ def test_stop_rule_default_epsilon_is_the_stated_share_of_the_simulated_spread(s
     low = prior.objective_model.predict_low(candidate_set(scenario, 1024, np.random.default_rng(5)))
     assert rule.epsilon == pytest.approx(0.05 * (np.median(low) - np.min(low)))
     assert "5% of the spread" in rule.epsilon_rule
+
+
+def test_stop_rule_widens_the_posterior_but_never_narrows_it(store_with_trials):
+    # the leave-one-out scale of these trials is below 1 (the model is wider than its residuals): the
+    # rule keeps the model's own posterior; with calibrate=False it is the model's own by definition
+    scenario, store, _ = store_with_trials
+    prior = current_prior(scenario, store, seed=0)
+    scale, z = loo_variance_scale(prior.objective_model)
+    assert scale < 1.0 and z.size == 4
+    assert stop_rule(prior, seed=1).variance_scale == 1.0
+    assert stop_rule(prior, seed=1, calibrate=False).variance_scale == 1.0
 
 
 def test_propose_command_prints_the_stop_line(store_with_trials):

@@ -19,11 +19,11 @@ import hashlib
 from pathlib import Path
 
 from ..compare.prior import (
-    DEFAULT_MAX_INDUCING,
     HardwareData,
     PriorData,
     PriorFit,
     hardware_data,
+    inducing_for,
     prior_data,
     refit_hardware,
 )
@@ -62,8 +62,8 @@ def sweep_state(scenario: Scenario, store: Store) -> str:
     return hashlib.sha256(f"{scenario.content_hash}:{rows}".encode()).hexdigest()
 
 
-def _refit(scenario: Scenario, store: Store, stored: PriorFit | None, state: str, seed: int, max_inducing: int,
-           progress: Progress | None) -> PriorFit:
+def _refit(scenario: Scenario, store: Store, stored: PriorFit | None, state: str, seed: int,
+           max_inducing: int | None, progress: Progress | None) -> PriorFit:
     """A new fit: the hardware levels alone when ``stored`` was fitted on the sweep as it stands (its
     ``sweep_state`` is ``state``); else from the rows, reusing ``stored``'s simulation levels if its content
     key matches."""
@@ -114,7 +114,7 @@ def fit_prior(
     store: Store | str | Path,
     *,
     seed: int = 0,
-    max_inducing: int = DEFAULT_MAX_INDUCING,
+    max_inducing: int | None = None,
     progress: Progress | None = None,
 ) -> PriorFit:
     """Fit the prior of ``scenario`` from ``store`` and store it there.
@@ -126,7 +126,8 @@ def fit_prior(
         scenario: a Scenario or the path of its TOML.
         store: an open :class:`~gapgauge.store.Store` (left open) or the path of its file.
         seed: seeds the subsample, the inducing points and the optimiser restarts; stored.
-        max_inducing: inducing points of a sparse simulation level (the sparse GP takes over above
+        max_inducing: inducing points of a sparse simulation level (None: 300, or 600 for a sweep of more
+            than 10^5 rollouts, :func:`gapgauge.compare.prior.inducing_for`; the sparse GP takes over above
             ``gapgauge.compare.multifidelity.SPARSE_THRESHOLD`` = 500 points).
         progress: called as ``progress(stage, step, 3)`` (see :mod:`gapgauge.progress`).
 
@@ -136,7 +137,10 @@ def fit_prior(
     scenario = as_scenario(scenario)
     with open_store(store, scenario=scenario) as opened:
         stored = _stored(scenario, opened)
-        if stored is not None and (stored.seed != seed or stored.max_inducing != max_inducing):
+        wanted = max_inducing
+        if stored is not None and wanted is None:  # the default for the sweep the stored fit was made on
+            wanted = inducing_for(max(stored.n_sim, stored.n_sim_fall_model))
+        if stored is not None and (stored.seed != seed or stored.max_inducing != wanted):
             stored = None
         fit = _refit(scenario, opened, stored, sweep_state(scenario, opened), seed, max_inducing, progress)
         save_prior(opened, fit)
@@ -153,7 +157,8 @@ def current_prior(
     """The stored prior if it was fitted on the store's current sweep and trials; else a new fit (stored),
     which keeps the stored simulation levels (and their seed) when only the trials changed.
 
-    ``seed`` seeds a fit from scratch (no stored prior, or the sweep changed).
+    ``seed`` seeds a fit from scratch (no stored prior, or the sweep changed); that fit takes the default
+    inducing points for the sweep's size (:func:`gapgauge.compare.prior.inducing_for`).
 
     Raises:
         ModelError: as :func:`fit_prior`.
@@ -165,8 +170,8 @@ def current_prior(
         if stored is not None and stored.sweep_state == state:
             if stored.hardware_key == read_hardware_data(scenario, opened).hardware_key():
                 return stored
-        max_inducing = DEFAULT_MAX_INDUCING if stored is None else stored.max_inducing
-        fit = _refit(scenario, opened, stored, state, seed, max_inducing, progress)
+        # a sweep that changed gets the default inducing points for its size (inducing_for)
+        fit = _refit(scenario, opened, stored, state, seed, None, progress)
         save_prior(opened, fit)
     return fit
 

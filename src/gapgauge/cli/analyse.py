@@ -97,10 +97,10 @@ def shift_command(scenario: str, store_path: str, json_path: str | None, plots_d
 @json_option
 @click.option("--seed", default=0, show_default=True, type=click.IntRange(0),
               help="Seed of the subsample, inducing points and optimiser restarts.")
-@click.option("--max-inducing", default=300, show_default=True, type=click.IntRange(10, 5000),
+@click.option("--max-inducing", default=None, type=click.IntRange(10, 5000),
               help=f"Inducing points of the simulation level (a sparse GP above {SPARSE_THRESHOLD:,} "
-              "standing rollouts).")
-def prior_command(scenario: str, store_path: str, json_path: str | None, seed: int, max_inducing: int) -> None:
+              "standing rollouts); default 300, or 600 for a sweep of more than 100,000 rollouts.")
+def prior_command(scenario: str, store_path: str, json_path: str | None, seed: int, max_inducing: int | None) -> None:
     """Fit and store the multi-fidelity prior (simulation corrected by hardware) and the fall model."""
 
     sc = load_scenario(scenario)

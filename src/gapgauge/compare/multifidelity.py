@@ -71,11 +71,11 @@ SPARSE_THRESHOLD = 500
 # simulations fell (winsorised mean about -0.7 m); the exact fit on 600 rollouts gives length-scales of
 # 0.5-4 and -0.37 +- 0.23 m there (benchmarks/transfer.py found the corner: every stand-in fell on it).
 HYPERPARAMETER_SUBSAMPLE = 600
-# Past 10^5 rollouts, more rows do not make the sparse level more accurate: its error is set by the
-# hyperparameters (from 600 rollouts) and the inducing points (held-out RMSE of the push_recovery objective,
-# 300 inducing points, two fit seeds: 0.780 / 0.748 on 10^5 real rollouts, 0.776 / 0.802 on 2 x 10^5; see
-# benchmarks/prior_scale.py), while the O(n m^2) pass over all of 10^6 grows tenfold. Above this many points
-# the posterior uses a seeded random subsample of them; the fall model's threshold and link see every one.
+# Past 10^5 rollouts more rows do not make the sparse level more accurate; its error is set by the
+# hyperparameters (from 600 rollouts) and the inducing points (benchmarks/prior_scale.py, push_recovery
+# objective: held-out RMSE 0.7407 from all of 10^6 replicated rollouts, 0.7408 from 200,000 of them), while
+# the O(n m^2) pass over all of them was most of a 164 s fit. Above this many points the posterior uses a
+# seeded random subsample of them; the fall model's threshold and link see every one.
 POSTERIOR_ROWS = 200_000
 RHO_PRIOR = (1.0, 0.5)  # mean, sd
 OFFSET_PRIOR_SD = 1.0  # simulation-sd units

@@ -51,13 +51,20 @@ from ..scenario import Scenario
 from .fall import FallModel
 from .gp import ExactGP
 from .kernels import Matern52, default_length_scale
-from .multifidelity import MultiFidelityGP
+from .multifidelity import POSTERIOR_ROWS, MultiFidelityGP
 from .prior_data import MARGIN, HardwareData, PriorData, hardware_data, prior_data
 
 MODEL_KIND = "prior"
 LOG2PI = np.log(2.0 * np.pi)
 STAGE = "prior"
 DEFAULT_MAX_INDUCING = 300
+# A sparse level's capacity must grow with its data for the approximation to stay good (Burt, Rasmussen and
+# van der Wilk 2019, ICML, "Rates of convergence for sparse variational GP regression"). Measured on the
+# push_recovery objective (benchmarks/prior_scale.py, mean held-out RMSE of 3 fit seeds): 300 inducing
+# points 0.736 at 10^5 rollouts but 0.749 at 2 x 10^5; 600 give 0.729 at 2 x 10^5 and 0.730 at 10^6
+# (replicated rows), for about 30% more fit time; a propose after a new trial then takes 1.0 s at 10^6.
+LARGE_SWEEP = 100_000
+LARGE_SWEEP_INDUCING = 600
 UNSTORED = {"stored": False}
 NO_MARGIN_NOTE = f"no {MARGIN} in the sweep: proposals carry no fall risk"
 
@@ -238,7 +245,7 @@ def fit_prior(
     data: PriorData,
     *,
     seed: int = 0,
-    max_inducing: int = DEFAULT_MAX_INDUCING,
+    max_inducing: int | None = None,
     simulation_level: PriorFit | None = None,
     sweep_state: str = "",
     progress: Progress | None = None,
@@ -249,7 +256,7 @@ def fit_prior(
         scenario: the scenario (parameter names, for the result).
         data: the arrays (:func:`prior_data` builds them from a sweep and trials).
         seed: seeds the subsample, the inducing points and the optimiser restarts.
-        max_inducing: inducing points of a sparse simulation level (used above
+        max_inducing: inducing points of a sparse simulation level (None: :func:`inducing_for` the sweep; used above
             ``multifidelity.SPARSE_THRESHOLD`` = 500 points).
         simulation_level: a previous fit (with its models): when its ``simulation_key`` equals this
             data's, its simulation levels (and its seed) are kept and only the hardware levels refitted.
@@ -261,6 +268,8 @@ def fit_prior(
     """
     if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or seed < 0:
         raise ModelError(f"seed must be a non-negative integer, got {seed!r}")
+    if max_inducing is None:
+        max_inducing = inducing_for(max(data.y_sim.size, data.margin_sim.size))
     if max_inducing < 1:
         raise ModelError(f"max_inducing must be at least 1, got {max_inducing}")
     started = time.perf_counter()
@@ -284,6 +293,10 @@ def fit_prior(
             data.X_sim_margin, data.margin_sim, data.X_hw_margin, data.margin_hw, fell_low=data.fell_sim_margin)
     else:
         simulation_notes.append(NO_MARGIN_NOTE)
+    largest = max(data.y_sim.size, data.margin_sim.size)
+    if largest > POSTERIOR_ROWS:
+        simulation_notes.append(f"the simulation levels' posteriors use a seeded random {POSTERIOR_ROWS:,} of up to "
+                                f"{largest:,} rollouts (more do not change their held-out error)")
     tick(f"{STAGE}: fall model ({data.margin_sim.size} simulated margins, {data.margin_hw.size} hardware)", 2, 3)
     simulation = {
         "n_sim": int(data.y_sim.size), "n_sim_fall_model": int(data.margin_sim.size),
@@ -366,5 +379,12 @@ def _result(
     )
 
 
+def inducing_for(n_rollouts: int) -> int:
+    """The default number of inducing points for a sweep of ``n_rollouts`` simulated rollouts (those of the
+    fall model, the larger set): :data:`DEFAULT_MAX_INDUCING` up to :data:`LARGE_SWEEP`, then
+    :data:`LARGE_SWEEP_INDUCING`."""
+    return DEFAULT_MAX_INDUCING if n_rollouts <= LARGE_SWEEP else LARGE_SWEEP_INDUCING
+
+
 __all__ = ["DEFAULT_MAX_INDUCING", "HardwareData", "PriorData", "PriorFit", "fit_prior", "hardware_data",
-           "hardware_only_gp", "leave_one_out", "prior_data", "refit_hardware"]
+           "hardware_only_gp", "inducing_for", "leave_one_out", "prior_data", "refit_hardware"]

@@ -8,8 +8,7 @@ minimisation. Here:
 - ``f`` is the latent hardware objective, ``x*`` the incumbent of ``gapgauge propose`` (the trial that
   stood with the lowest posterior mean);
 - the probability is estimated from joint posterior draws of the objective and the margin of stability
-  (:mod:`gapgauge.compare.budget.belief`, the covariance scaled as the budget's by the trials'
-  leave-one-out residuals, Bachoc 2013) on a finite set: ``n_candidates`` scrambled Sobol points of
+  (:mod:`gapgauge.compare.budget.belief`) on a finite set: ``n_candidates`` scrambled Sobol points of
   the safe bounds, a local cloud around the incumbent (where its nearest rivals are) and the trials.
   The minimum is over the points on which the draw stands (its fall chance below one half); the trials
   stood. A finite set misses part of each draw's minimum, so the probability leans optimistic; the
@@ -18,6 +17,13 @@ minimisation. Here:
   binomial; Bonferroni-corrected over the batches, so the decision holds at 95% however many looks)
   lies on one side of ``level``, as Wilson (2024) decides with a sequential test rather than a fixed
   sample; if it never does within ``max_draws``, the point estimate decides and the result says so.
+
+The posterior is the model's own, widened (never narrowed) when the trials' leave-one-out residuals
+say it is too sure of itself (:func:`~gapgauge.compare.budget.belief.loo_variance_scale`, Bachoc 2013;
+the factor is ``max(1, scale)``). Narrowing it, as the budget does, would make the rule stop too early:
+tuning clusters the trials around the incumbent, where the model predicts well, and their residuals say
+nothing of the regions it has not tried, where a better basin may hide. On the stand-in robots the
+narrowed rule stopped runs whose incumbent was far from the best (benchmarks/budget_coverage.py).
 
 ``epsilon`` defaults to a share (5%) of the spread of the simulated objective over the safe bounds
 (the median minus the lowest of the simulation level's mean on the Sobol points): a distance in
@@ -68,7 +74,7 @@ class StopRule:
         incumbent_mean: its posterior mean, objective units, or None.
         best_expected: the median over the draws of the best reachable, objective units, or None.
         n_candidates: points the best reachable was taken over.
-        variance_scale: the draws' covariance scale (leave-one-out, Bachoc 2013; 1: unscaled).
+        variance_scale: the draws' covariance scale (``max(1, leave-one-out scale)``; 1: the model's own).
         seed: seed of the candidates and draws.
     """
 
@@ -201,7 +207,8 @@ def stop_rule(
         seed: seeds the candidates, the local cloud and the draws; stored.
         n_candidates: Sobol points of the safe bounds.
         max_draws: the most posterior draws (in batches of ``DRAW_BATCH``).
-        calibrate: scale the draws' covariance by the trials' leave-one-out residuals.
+        calibrate: widen the draws' covariance when the trials' leave-one-out residuals say the model is
+            too sure (never narrow it).
 
     Raises:
         ModelError: an argument out of range, or a prior without its models.
@@ -225,13 +232,13 @@ def stop_rule(
     safe = scenario.to_unit(scenario.bounds(safe=True).T).T
     points = np.vstack([X_hw, local_cloud(X_hw[best], safe, LOCAL_CANDIDATES, rng), sobol])
     objective, _ = multifidelity_belief(model, points)
-    scale = loo_variance_scale(model)[0] if calibrate else 1.0
+    scale = max(1.0, loo_variance_scale(model)[0]) if calibrate else 1.0
     L_objective = cholesky_jittered(scaled(objective, scale).cov, eigen_fallback=True)
     margin = L_margin = link = None
     if prior.fall_model is not None:
         fall = prior.fall_model
         margin, _ = multifidelity_belief(fall.model_, points)
-        margin_scale = loo_variance_scale(fall.model_)[0] if calibrate else 1.0
+        margin_scale = max(1.0, loo_variance_scale(fall.model_)[0]) if calibrate else 1.0
         L_margin = cholesky_jittered(scaled(margin, margin_scale).cov, eigen_fallback=True)
         a, b = fall.calibration_
         link = (float(a), float(b), float(fall.threshold_))
