@@ -63,7 +63,7 @@ from gapgauge.app.budget import plan_budget
 from gapgauge.app.ingest import ingest, trial_record
 from gapgauge.app.prior import current_prior, fit_prior
 from gapgauge.app.sweep import sweep
-from gapgauge.compare.budget import BudgetPlan, candidate_set
+from gapgauge.compare.budget import DEFAULT_CANDIDATES, BudgetPlan, candidate_set
 from gapgauge.compare.propose import propose, safe_unit_bounds
 from gapgauge.compare.stop import STOP_CANDIDATES, default_epsilon, stop_rule
 from gapgauge.errors import GapgaugeError, ModelError
@@ -81,9 +81,10 @@ MAX_FALL_RISK = 0.05
 # bump when the realised runs' method (propose, the refits, the stop rule) changes: their cache is keyed by it
 RUN_VERSION = "r1"
 STOP_VERSION = "s2"  # the same for the stop rule's replay
-BUDGET_VERSION = "b1"  # the same for the budget (plan_budget's method)
+BUDGET_VERSION = "b2"  # the same for the budget (plan_budget's method)
 WIDEN = 0.2  # random profiles: each physics range widened by this share of its width on both sides
-FULL = {"runs": 30, "max_trials": 20, "draws": 128, "candidates": 1024, "sweep": 2000, "design": 2048, "refine": 8}
+FULL = {"runs": 30, "max_trials": 20, "draws": 128, "candidates": DEFAULT_CANDIDATES, "sweep": 2000, "design": 2048,
+        "refine": 8}
 QUICK = {"runs": 4, "max_trials": 8, "draws": 32, "candidates": 256, "sweep": 1000, "design": 512, "refine": 3}
 TARGETS = {"p80_finite": 0.80, "p80_coverage": (0.70, 0.95), "p50_coverage": (0.35, 0.65), "sharpness": 2.5,
            "stop_right": 0.85}

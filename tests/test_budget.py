@@ -323,7 +323,8 @@ def test_budget_job_on_a_small_real_store_stores_the_plan_it_returns(tmp_path):
     logs = run_standin(path, root / "scenarios" / "standin" / "close.toml", design=3, out_dir=tmp_path, seed=0)
     ingest(path, store_path, logs, matches=2, seed=0)
     calls: list[tuple[str, int, int]] = []
-    plan = plan_budget(path, store_path, draws=16, max_trials=6, progress=lambda *call: calls.append(call))
+    plan = plan_budget(path, store_path, draws=16, max_trials=6, n_candidates=512,
+                       progress=lambda *call: calls.append(call))
     assert plan.draws == 16 and len(plan.curve) == 6
     assert plan.sentence.startswith("Book ") and "without it" in plan.sentence
     # the budget's own stages (the prior's fit reports too): each arm's simulated trials, ending at the total
@@ -344,7 +345,7 @@ def synthetic_store(tmp_path_factory: pytest.TempPathFactory):
 
 def test_budget_job_states_the_success_rule_and_the_sweep_evidence_for_it(synthetic_store):
     scenario, store, _ = synthetic_store
-    plan = plan_budget(scenario, store, draws=24, max_trials=8, seed=1)
+    plan = plan_budget(scenario, store, draws=24, max_trials=8, seed=1, n_candidates=512)
     # the scenario's [success] rule (push_recovery: recovery_time <= 2.0 s) is part of the target; the
     # synthetic sweep's rollouts all recover at once (features 0), so the sweep shows it holds at the level
     assert plan.target.success_rule == "recovery_time <= 2"
@@ -358,7 +359,7 @@ def test_budget_job_states_the_success_rule_and_the_sweep_evidence_for_it(synthe
 def test_budget_command_says_what_it_chose_and_why(synthetic_store):
     _, _, path = synthetic_store
     run = CliRunner().invoke(main, ["budget", str(SCENARIO_PATH), "--store", str(path), "--draws", "24",
-                                    "--max-trials", "8", "--within", "0.05"])
+                                    "--max-trials", "8", "--candidates", "512", "--within", "0.05"])
     assert run.exit_code == 0, run.output
     text = " ".join(run.output.split())  # the console wraps long lines
     assert "target: A trial that does not fall" in text and "within 0.05 of" in text

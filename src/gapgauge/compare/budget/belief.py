@@ -11,8 +11,8 @@ The surfaces are drawn from the prior's posterior with its covariance scaled by 
 the hardware trials themselves (:func:`loo_variance_scale`): the cross-validation estimate of a GP's
 variance (Bachoc 2013), each trial predicted by the model refitted without it, shrunk towards 1. On
 the stand-in robots the simulation-led posterior is several times too wide where tuning goes (its
-mean is close, its sd is not); drawn from unscaled, the surfaces reach levels no robot reaches. The
-tuner of the simulated runs keeps the unscaled model, as ``gapgauge propose`` does.
+mean is close, its sd is not); drawn from it unscaled, the surfaces reach levels no robot reaches. The
+tuner of the simulated runs keeps the model as it is, as ``gapgauge propose`` does.
 """
 
 from __future__ import annotations

@@ -37,7 +37,9 @@ from .target import (
 
 DEFAULT_DRAWS = 128
 DEFAULT_MAX_TRIALS = 20
-DEFAULT_CANDIDATES = 1024
+# the simulated tuner picks among a fixed set where propose polishes 1,024 Sobol points by local search:
+# it needs the finer set to get as low (measured on the stand-ins: benchmarks/budget_coverage.py)
+DEFAULT_CANDIDATES = 4096
 DEFAULT_TARGET_FRACTION = 0.95  # the per-draw fraction target, when asked for
 DEFAULT_CONFIDENCE = 0.8
 # a belief covariance whose diagonal differs from its model's predictive sd by more than this
@@ -325,7 +327,8 @@ def plan_from_prior(
         success: ``(objective (n,), met (n,) bool)`` of the sweep's rollouts that stood: whether each met
             the success rule (:func:`gapgauge.features.success`); the evidence of the levels at which the
             rule holds (None: not used).
-        calibrate: scale the surfaces' variance by the trials' leave-one-out residuals (the default).
+        calibrate: scale the surfaces' variance by the trials' leave-one-out residuals (the default);
+            False: draw from the posterior as it is.
         progress: called as ``progress(stage, done, total)`` as the simulated trials go.
 
     Raises:
